@@ -34,8 +34,12 @@ Inverse
 model is a Moebius (linear-fractional) function of x (only arms 1,2 vary, only arms 3,4 vary, or
 the two halves share a denominator: every standard arrangement, with or without leads), the
 inverse is ``x = (a V + b) / (c V + d)`` with coefficients in ``.mobius``, which a caller can
-broadcast across channels (:func:`apply_mobius`). Otherwise a vectorised, bracketed Newton
-iteration runs on the monotone branch of the forward model that contains x = 0.
+broadcast across channels (:func:`apply_mobius`). Otherwise (general custom arms) a vectorised
+Newton iteration with the analytic derivative runs on the monotone branch of the forward model
+that contains x = 0; it starts from the branch root of the quadratic obtained by clearing the
+denominators of V(x) = t (or, on request, from the linear estimate), and any sample a Newton
+step does not confirm goes through a per-sample bracket with bisection fallback. Ratios with no
+solution on that branch with every arm resistance > 0 come back NaN with ok = False.
 """
 
 from __future__ import annotations
@@ -327,6 +331,14 @@ def apply_mobius(
 class BridgeInverse:
     """Exact inverse of :func:`ratio_forward` for one circuit: ratio -> x = GF * strain.
 
+    ``method``: "auto" (Moebius when available, else Newton), "mobius" (ValueError if the
+    circuit has no linear-fractional form) or "newton" (force the general solver).
+    ``newton_start``: "quadratic" (default; clearing the denominators of V(x) = t gives a
+    quadratic in x, whose root on the branch is a start accurate to rounding, so one Newton step
+    confirms it) or "linear" (start from the small-signal estimate; the bracketed iteration
+    does all the work). Either way the result is accepted only after a Newton step below the
+    rounding floor, and anything that fails goes through the bracketed Newton/bisection loop.
+
     Attributes:
         circuit:        the circuit.
         mobius:         (a, b, c, d) with x = (a V + b)/(c V + d) when the forward model is
@@ -336,24 +348,30 @@ class BridgeInverse:
                         clipped to +-X_SEARCH_LIMIT on the Newton path where unbounded).
         ratio_at_zero:  ratio_forward(circuit, 0).
         sensitivity:    d(ratio)/dx at x = 0.
-        method:         "mobius" or "newton" (``method="newton"`` forces the general solver).
+        method:         "mobius" or "newton", the path x_from_ratio takes.
     """
 
-    def __init__(self, circuit: BridgeCircuit, method: str = "auto") -> None:
+    def __init__(
+        self, circuit: BridgeCircuit, method: str = "auto", newton_start: str = "quadratic"
+    ) -> None:
         if method not in ("auto", "mobius", "newton"):
             raise ValueError(f"method: expected 'auto', 'mobius' or 'newton', got {method!r}")
+        if newton_start not in ("quadratic", "linear"):
+            raise ValueError(
+                f"newton_start: expected 'quadratic' or 'linear', got {newton_start!r}"
+            )
         self.circuit = circuit
+        self.newton_start = newton_start
         n = np.asarray(circuit.nominal_ohm)
         k = np.asarray(circuit.k)
         lead = np.asarray(circuit.lead_ohm)
-        self._A = n + lead          # arm resistance at x = 0
-        self._B = n * k             # d(arm)/dx
-        A, B = self._A, self._B
+        A = n + lead          # arm resistance at x = 0
+        B = n * k             # d(arm)/dx
         # F1 = R1/(R1+R2) = (p1 + q1 x)/(r1 + s1 x);  F2 = R4/(R3+R4) = (p2 + q2 x)/(r2 + s2 x)
-        self._h1 = (A[0], B[0], A[0] + A[1], B[0] + B[1])
-        self._h2 = (A[3], B[3], A[2] + A[3], B[2] + B[3])
+        self._h1 = tuple(float(v) for v in (A[0], B[0], A[0] + A[1], B[0] + B[1]))
+        self._h2 = tuple(float(v) for v in (A[3], B[3], A[2] + A[3], B[2] + B[3]))
 
-        lo, hi = -np.inf, np.inf
+        lo, hi = -math.inf, math.inf
         for ai, bi in zip(A, B):
             if bi > 0:
                 lo = max(lo, -ai / bi)
@@ -375,12 +393,19 @@ class BridgeInverse:
             self.x_branch = self.x_domain
         else:
             self.x_branch = self._newton_branch()
-            xb_lo, xb_hi = self.x_branch
-            self._v_lo = float(self._forward(np.float64(xb_lo)))
-            self._v_hi = float(self._forward(np.float64(xb_hi)))
+            self._v_lo = float(self._forward(np.float64(self.x_branch[0])))
+            self._v_hi = float(self._forward(np.float64(self.x_branch[1])))
             self._sign = 1.0 if self.sensitivity > 0 else -1.0
             # Rounding floor of the forward model, expressed in x (stopping tolerance).
             self._xtol = 16.0 * _EPS * (1.0 + abs(self.ratio_at_zero)) / abs(self.sensitivity)
+            # V(x) = t  <=>  N1 D2 - N2 D1 - t D1 D2 = 0: quadratic coefficients, linear in t.
+            p1, q1, r1, s1 = self._h1
+            p2, q2, r2, s2 = self._h2
+            self._quad = (
+                (q1 * s2 - q2 * s1, -s1 * s2),
+                (p1 * s2 + q1 * r2 - p2 * s1 - q2 * r1, -(r1 * s2 + s1 * r2)),
+                (p1 * r2 - p2 * r1, -r1 * r2),
+            )
 
     # -- forward pieces (same algebra as ratio_forward, in the p + q x form)
     def _forward(self, x: np.ndarray) -> np.ndarray:
@@ -454,15 +479,46 @@ class BridgeInverse:
             return apply_mobius(v, a, b, c, d, *self.x_domain)
         return self._newton(v)
 
-    def _newton(self, v: np.ndarray, max_iter: int = 100) -> tuple[np.ndarray, np.ndarray]:
+    def _newton(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         shape = v.shape
         t = v.reshape(-1)
         x_out = np.full(t.shape, np.nan)
         ok_out = np.zeros(t.shape, dtype=bool)
         v_min, v_max = min(self._v_lo, self._v_hi), max(self._v_lo, self._v_hi)
-        idx = np.flatnonzero((t > v_min) & (t < v_max))  # excludes NaN
-        if idx.size == 0:
-            return x_out.reshape(shape), ok_out.reshape(shape)
+        idx = np.flatnonzero((t > v_min) & (t < v_max))  # excludes NaN: no solution outside
+        if idx.size and self.newton_start == "quadratic":
+            tt = t[idx]
+            x = self._quadratic_start(tt)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                step = (self._forward(x) - tt) / self._derivative(x)
+            x = x - step
+            lo, hi = self.x_branch
+            good = (np.abs(step) <= self._xtol + 4.0 * _EPS * np.abs(x)) & (x > lo) & (x < hi)
+            x_out[idx[good]] = x[good]
+            ok_out[idx[good]] = True
+            idx = idx[~good]
+        if idx.size:
+            self._bracketed(t, idx, x_out, ok_out)
+        return x_out.reshape(shape), ok_out.reshape(shape)
+
+    def _quadratic_start(self, tt: np.ndarray) -> np.ndarray:
+        """Root of the cleared quadratic that lies on the branch (NaN where none is found)."""
+        (a0, a1), (b0, b1), (c0, c1) = self._quad
+        qa = a0 + a1 * tt
+        qb = b0 + b1 * tt
+        qc = c0 + c1 * tt
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = -(qb + np.copysign(np.sqrt(qb * qb - 4.0 * qa * qc), qb))
+            x_small = 2.0 * qc / w       # cancellation-free form of each root
+            x_big = w / (2.0 * qa)
+        lo, hi = self.x_branch
+        return np.where((x_small > lo) & (x_small < hi), x_small, x_big)
+
+    def _bracketed(
+        self, t: np.ndarray, idx: np.ndarray, x_out: np.ndarray, ok_out: np.ndarray,
+        max_iter: int = 200,
+    ) -> None:
+        """Newton from the linear estimate with a per-sample bracket; bisection when a step leaves it."""
         sgn = self._sign
         tt = t[idx]
         a = np.full(idx.size, self.x_branch[0])
@@ -485,9 +541,8 @@ class BridgeInverse:
             np.copyto(a, x, where=g < 0.0)
             with np.errstate(divide="ignore", invalid="ignore"):
                 xn = x - g / gp
-            bad = ~((xn > a) & (xn < b))
             hit = g == 0.0
-            bad &= ~hit
+            bad = ~((xn > a) & (xn < b)) & ~hit
             if bad.any():
                 xn[bad] = 0.5 * (a[bad] + b[bad])
             xn[hit] = x[hit]
@@ -502,7 +557,6 @@ class BridgeInverse:
                 if idx.size == 0:
                     break
         # anything left in idx did not converge: stays NaN / not ok
-        return x_out.reshape(shape), ok_out.reshape(shape)
 
 
 # --------------------------------------------------------------------------- gauge law, tare, shunt
