@@ -80,14 +80,13 @@ def _strain_converter(ch: Mapping[str, Any]) -> ChannelConverter:
     inverse = bridge.BridgeInverse(circuit)
     gf = float(ch["gauge_factor"])
     gf2 = float(ch.get("gauge_factor_2", 0.0) or 0.0)
-    ks = np.asarray(circuit.k, dtype=float)
-    k_hi, k_lo = float(ks.max()), float(ks.min())
+    x_lo, x_hi = inverse.x_domain
     scale = MICRO / gf
 
     def physical(microstrain: np.ndarray) -> np.ndarray:
-        # every arm resistance must stay positive: 1 + k_i * x > 0 (x = GF * strain)
+        # every arm resistance (leads included) must stay positive: x inside the domain
         x = microstrain / scale
-        return (1.0 + k_hi * x > 0.0) & (1.0 + k_lo * x > 0.0)
+        return (x > x_lo) & (x < x_hi)
 
     mobius = None
     func = None
@@ -226,7 +225,7 @@ class DeviceChain:
         if self.native == "code24":
             sat = (data == CODE_MAX) | (data == CODE_MIN)
             if sat.any():
-                quality[sat] |= Quality.SATURATED
+                quality[sat] |= np.uint8(Quality.SATURATED)
         values = np.empty(q.shape, dtype=np.float64)
         cols = self._mobius_cols
         if len(cols):
@@ -240,7 +239,7 @@ class DeviceChain:
             for k, i in self._checks:
                 bad = ~self.converters[i].valid_range(values[:, i])
                 if bad.any():
-                    quality[bad, i] |= Quality.OUT_OF_RANGE
+                    quality[bad, i] |= np.uint8(Quality.OUT_OF_RANGE)
         if self._func_cols:
             off = self.offsets()
             for i in self._func_cols:
@@ -248,13 +247,13 @@ class DeviceChain:
                 out, ok = self.converters[i].convert_ratio(v)
                 values[:, i] = out
                 if not ok.all():
-                    quality[~ok, i] |= Quality.OUT_OF_RANGE
+                    quality[~ok, i] |= np.uint8(Quality.OUT_OF_RANGE)
         bad = (quality & UNUSABLE) != 0
         if bad.any():
             values[bad] = np.nan
         nonfinite = ~np.isfinite(values) & ~bad
         if nonfinite.any():
-            quality[nonfinite] |= Quality.OUT_OF_RANGE
+            quality[nonfinite] |= np.uint8(Quality.OUT_OF_RANGE)
         return EngineeringBlock(raw=block, values=values, quality=quality, names=self.names,
                                 units=self.units)
 

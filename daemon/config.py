@@ -81,6 +81,12 @@ def _check_strain(ch: dict, path: str, src: Any) -> None:
         raise ConfigError(f"{path}.poisson", f"required for bridge {bridge!r}", line_of(src))
     if bridge == "custom" and ch["arms"] is None:
         raise ConfigError(f"{path}.arms", "required for bridge 'custom'", line_of(src))
+    if not bridge.endswith("poisson") and ch["poisson"] is not None:
+        raise ConfigError(f"{path}.poisson", f"only used with the *-poisson bridges, not {bridge!r}",
+                          line_of(src, "poisson"))
+    if bridge.startswith("full") and ch["completion_ohm"] not in (None, ch["gauge_ohm"]):
+        raise ConfigError(f"{path}.completion_ohm", "a full bridge has no completion resistors",
+                          line_of(src, "completion_ohm"))
     if bridge != "custom" and ch["arms"] is not None:
         raise ConfigError(f"{path}.arms", f"only used with bridge 'custom', not {bridge!r}",
                           line_of(src, "arms"))

@@ -228,7 +228,7 @@ class DeviceRunner(threading.Thread):
             gap = self._pending_gap
             self._pending_gap = None
             q = block.quality.copy()
-            q[0, :] |= Quality.AFTER_GAP
+            q[0, :] |= np.uint8(Quality.AFTER_GAP)
             block = block.with_quality(q)
             self.emit(make_event("gap", self.name_, origin="service", reason=gap["reason"],
                                  last_sample_before_ns=gap["since_ns"],

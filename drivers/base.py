@@ -188,6 +188,12 @@ class Driver(abc.ABC):
         """What this driver instance is (defaults to `static_info` of its options)."""
         return self.static_info(self.options)
 
+    @classmethod
+    def example(cls) -> tuple[DeviceSetup, dict[str, Any]] | None:
+        """A self-contained (setup, validated options) the contract test can open without hardware
+        (a simulated source, ``loop://`` for serial drivers). Every built-in driver provides one."""
+        return None
+
     # -- optional capabilities -------------------------------------------------------------
     def set_shunt(self, channel_index: int, on: bool) -> None:
         """Switch the shunt calibration resistor of one channel in or out."""

@@ -76,7 +76,7 @@ def test_wrong_type_named() -> None:
     err = _bad(GOOD.replace("gauge_factor: 2.0", "gauge_factor: two"))
     assert err.path == "devices[0].channels[0].gauge_factor"
     assert "expected a number" in str(err)
-    assert err.line == 12
+    assert err.line == 13
 
 
 def test_missing_gauge_factor_named() -> None:
@@ -134,17 +134,18 @@ def test_duplicate_yaml_key() -> None:
 
 
 def test_transducer_needs_rated_output_or_certificate() -> None:
-    text = GOOD.replace("""          - name: g3
-            sensor: strain_gauge
-            gauge_factor: 2.1
-            gauge_ohm: 120
-            bridge: full-bending
-""", """          - name: g3
-            sensor: bridge_transducer
-            quantity: force
-            unit: kN
-            capacity: 10
+    text = GOOD.replace("""      - name: g3
+        sensor: strain_gauge
+        gauge_factor: 2.1
+        gauge_ohm: 120
+        bridge: full-bending
+""", """      - name: g3
+        sensor: bridge_transducer
+        quantity: force
+        unit: kN
+        capacity: 10
 """)
+    assert text != GOOD
     err = _bad(text)
     assert err.path == "devices[0].channels[2].rated_output_mv_per_v"
 
