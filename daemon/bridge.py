@@ -16,8 +16,9 @@ Lead placement chosen by :func:`circuit_for`:
 * half-bending / half-poisson, 3-wire: ``RL`` in arms 1 and 2; half-opposite: ``RL`` in arms 1 and 3;
 * full bridges: ``lead_ohm`` is **ignored**. The leads carry excitation only, and the ratio is
   taken against the sensed excitation (remote sense), so no lead resistance enters an arm;
-* custom: ``RL`` in series with every active arm (``k_i != 0``), as for the half bridges. Use
-  ``lead_ohm = 0`` for a remotely sensed custom full bridge.
+* custom: 3-wire connection per half bridge: a half (arms 1-2 or 3-4) with an active gauge has
+  ``RL`` in both of its arms, as the quarter bridge does; with all four arms active it is a full
+  bridge and the leads are ignored (remote sense).
 
 Tare (zero)
 -----------
@@ -292,7 +293,12 @@ def circuit_for(
     else:  # custom
         k = arms_t
         active = tuple(a != 0.0 for a in k)
-        leads = tuple(rl if a else 0.0 for a in active)
+        if all(active):  # a full bridge: leads carry excitation only (remote sense)
+            leads = (0.0,) * 4
+        else:  # 3-wire: each half with an active gauge has one lead in each of its two arms
+            left = rl if (active[0] or active[1]) else 0.0
+            right = rl if (active[2] or active[3]) else 0.0
+            leads = (left, left, right, right)
     nominal = tuple(rg if a else rc for a in active)
     return BridgeCircuit(nominal_ohm=nominal, k=k, lead_ohm=leads)  # type: ignore[arg-type]
 

@@ -192,7 +192,7 @@ ARRANGEMENTS = [
     ("full-poisson-sensed", dict(bridge="full-poisson", gauge_ohm=RG, lead_ohm=RL, poisson=NU),
      net_full_poisson, dict(rl=RL), ("ST", "SU")),
     ("custom-3wire", dict(bridge="custom", gauge_ohm=RG, lead_ohm=RL, arms=(1, -0.3, 0.2, 0)),
-     net_arms, dict(nominal=(RG,) * 4, k=(1, -0.3, 0.2, 0), lead=(RL, RL, RL, 0.0)), None),
+     net_arms, dict(nominal=(RG,) * 4, k=(1, -0.3, 0.2, 0), lead=(RL, RL, RL, RL)), None),
 ]
 
 
@@ -403,7 +403,10 @@ def test_circuit_for_lead_placement():
     assert leads(bridge="half-opposite") == (2.0, 0.0, 2.0, 0.0)
     assert leads(bridge="full-bending") == (0.0, 0.0, 0.0, 0.0)
     assert leads(bridge="full-poisson", poisson=0.3) == (0.0, 0.0, 0.0, 0.0)
-    assert leads(bridge="custom", arms=(1, 0, -1, 0)) == (2.0, 0.0, 2.0, 0.0)
+    # custom: 3-wire per half bridge (each half with an active gauge has a lead in both arms)
+    assert leads(bridge="custom", arms=(1, 0, -1, 0)) == (2.0, 2.0, 2.0, 2.0)
+    assert leads(bridge="custom", arms=(1, 0, 0, 0)) == (2.0, 2.0, 0.0, 0.0)
+    assert leads(bridge="custom", arms=(1, -1, 1, -0.5)) == (0.0, 0.0, 0.0, 0.0)
     c = circuit_for("quarter", 350.0, completion_ohm=349.5)
     assert c.nominal_ohm == (350.0, 349.5, 349.5, 349.5) and c.k == (1.0, 0.0, 0.0, 0.0)
     c = circuit_for("half-poisson", 350.0, completion_ohm=349.5, poisson=0.3)
