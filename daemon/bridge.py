@@ -72,6 +72,7 @@ __all__ = [
     "shunted_arm_ohm",
     "ratio_with_shunt",
     "expected_shunt_strain",
+    "shunted_ratio_at",
 ]
 
 #: Signed 24-bit converter limits; these two codes are saturated and never converted.
@@ -624,6 +625,25 @@ def ratio_with_shunt(
         r[i] = float(shunted_arm_ohm(r[i], shunt_ohm))
     else:
         r[i] = float(shunted_arm_ohm(circuit.nominal_ohm[i], shunt_ohm)) + circuit.lead_ohm[i]
+    return r[0] / (r[0] + r[1]) - r[3] / (r[2] + r[3])
+
+
+def shunted_ratio_at(
+    circuit: BridgeCircuit, x: float, shunt_ohm: float, arm: int, *, include_lead: bool = True
+) -> float:
+    """Bridge ratio with ``shunt_ohm`` across arm ``arm`` while the bridge sits at state ``x``
+    (x = GF * strain of the active gauges): the exact forward model of a shunt calibration
+    taken under load."""
+    if isinstance(arm, bool) or arm not in (1, 2, 3, 4):
+        raise ValueError(f"arm: expected 1, 2, 3 or 4, got {arm!r}")
+    nominal = np.asarray(circuit.nominal_ohm) * (1.0 + np.asarray(circuit.k) * float(x))
+    lead = np.asarray(circuit.lead_ohm, dtype=np.float64)
+    r = list(nominal + lead)
+    i = arm - 1
+    if include_lead:
+        r[i] = float(shunted_arm_ohm(r[i], shunt_ohm))
+    else:
+        r[i] = float(shunted_arm_ohm(nominal[i], shunt_ohm)) + float(lead[i])
     return r[0] / (r[0] + r[1]) - r[3] / (r[2] + r[3])
 
 

@@ -160,7 +160,7 @@ class DeviceChain:
     """
 
     def __init__(self, device: Mapping[str, Any], zeros: Mapping[str, float] | None = None,
-                 native: str = "code24"):
+                 native: str = "code24", gains: Mapping[str, float] | None = None):
         self.device = device
         self.native = native
         chans = device["channels"]
@@ -177,10 +177,14 @@ class DeviceChain:
             self.ratio_per_code = np.ones(m)
         for conv in self.converters:
             conv.attrs.setdefault("gain", int(adc.get("gain", 1)) if adc else 1)
+        self.gain_correction = np.ones(m)
         self.zero_ratio = np.full(m, np.nan)
         for i, name in enumerate(self.names):
             if zeros and name in zeros and zeros[name] is not None:
                 self.zero_ratio[i] = float(zeros[name])
+        for i, name in enumerate(self.names):
+            if gains and gains.get(name) is not None:
+                self.gain_correction[i] = float(gains[name])
         self._mobius_cols = np.array([i for i, c in enumerate(self.converters) if c.mobius is not None],
                                      dtype=np.intp)
         self._func_cols = [i for i, c in enumerate(self.converters) if c.mobius is None]
@@ -196,17 +200,26 @@ class DeviceChain:
         self.zero_ratio[index] = np.nan if zero_ratio is None else float(zero_ratio)
         self._rebuild()
 
+    def set_gain_correction(self, index: int, factor: float) -> None:
+        """Multiply the channel's values by `factor` (from a shunt calibration the user applied)."""
+        if not np.isfinite(factor) or factor <= 0:
+            raise ValueError(f"gain correction must be a positive number, got {factor!r}")
+        self.gain_correction[index] = float(factor)
+        self._rebuild()
+
     def _rebuild(self) -> None:
-        """Fold ratio-per-code and offset into each Moebius column's coefficients."""
+        """Fold ratio-per-code, offset and gain correction into each Moebius column's
+        coefficients."""
         off = self.offsets()
         cols = self._mobius_cols
         coeff = np.array([self.converters[i].mobius for i in cols], dtype=float).reshape(-1, 4)
         s = self.ratio_per_code[cols]
         a, b, c, d = coeff.T
         o = off[cols]
-        # value = (a (s q - o) + b) / (c (s q - o) + d)
-        self._A = a * s
-        self._B = b - a * o
+        g = self.gain_correction[cols]
+        # value = g (a (s q - o) + b) / (c (s q - o) + d)
+        self._A = g * a * s
+        self._B = g * (b - a * o)
         self._C = c * s
         self._D = d - c * o
         self._all_mobius = len(cols) == len(self.converters)
@@ -245,7 +258,7 @@ class DeviceChain:
             for i in self._func_cols:
                 v = q[:, i] * self.ratio_per_code[i] - off[i]
                 out, ok = self.converters[i].convert_ratio(v)
-                values[:, i] = out
+                values[:, i] = out * self.gain_correction[i]
                 if not ok.all():
                     quality[~ok, i] |= np.uint8(Quality.OUT_OF_RANGE)
         bad = (quality & UNUSABLE) != 0
@@ -265,6 +278,7 @@ class DeviceChain:
             attrs = dict(conv.attrs)
             attrs["zero_ratio"] = float(self.zero_ratio[i])
             attrs["ratio_per_code"] = float(self.ratio_per_code[i])
+            attrs["gain_correction"] = float(self.gain_correction[i])
             if extra_attrs and conv.name in extra_attrs:
                 attrs.update(extra_attrs[conv.name])
             out.append(ChannelLayout(conv.name, i, conv.quantity, conv.unit, True, attrs))

@@ -123,6 +123,19 @@ def cmd_tare(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_shunt_cal(args: argparse.Namespace) -> int:
+    result = _send(args, "shunt-cal", {"channel": args.channel, "apply": args.apply,
+                                       "seconds": args.seconds}, timeout_s=args.seconds * 10 + 30)
+    for name, d in result.items():
+        flag = "" if d["within_tolerance"] else f"  OUT OF TOLERANCE (+/-{d['tolerance_pct']:g} %)"
+        print(f"{name}: shunt {d['shunt_ohm']:g} ohm on arm {d['arm']}: expected "
+              f"{d['expected_microstrain']:.3f}, measured {d['measured_microstrain']:.3f} "
+              f"microstrain, gain {d['gain']:.6f} ({d['gain_error_pct']:+.3f} %){flag}")
+        print(f"  gain correction {'applied' if d['applied'] else 'not applied'}: "
+              f"{d['gain_correction']:.6f} (calibration version {d['calibration_version']})")
+    return 0
+
+
 def cmd_mark(args: argparse.Namespace) -> int:
     _send(args, "mark", {"text": " ".join(args.text)})
     print("event mark recorded")
@@ -213,6 +226,16 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--json", action="store_true", help="print the full status as JSON")
     sock_arg(sp)
     sp.set_defaults(func=cmd_status)
+
+    sp = sub.add_parser("shunt-cal", help="shunt-calibrate a channel: switch the shunt, "
+                        "compare the step with the exact bridge equation")
+    sp.add_argument("channel", metavar="CHANNEL", help="CHANNEL or DEVICE/CHANNEL")
+    sp.add_argument("--apply", action="store_true",
+                    help="apply the measured gain correction (default: only record it)")
+    sp.add_argument("--seconds", type=float, default=1.0,
+                    help="averaging time with the shunt off and on, each (default 1)")
+    sock_arg(sp)
+    sp.set_defaults(func=cmd_shunt_cal)
 
     sp = sub.add_parser("mark", help="record an event mark (a note in the events table)")
     sp.add_argument("text", nargs="+")

@@ -62,6 +62,10 @@ TARE_SECTION = Section({
 SHUNT_SECTION = Section({
     "ohm": Field(float, doc="shunt calibration resistor", unit="ohm", min=0, min_exclusive=True),
     "arm": Field(int, 1, doc="bridge arm the shunt is connected across (1-4)", min=1, max=4),
+    "tolerance_pct": Field(float, 1.0, doc="gain error beyond which the channel is flagged",
+                           unit="%", min=0),
+    "at_gauge": Field(bool, False, doc="true: the shunt is across the gauge itself (leads not "
+                      "included); false: at the instrument terminals (leads included)"),
 })
 
 _COMMON_CHANNEL = {

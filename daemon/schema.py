@@ -246,6 +246,8 @@ def validate(spec: Any, value: Any, path: str = "", line: int | None = None) -> 
         return spec.check(value, path, line)
     if isinstance(spec, Section):
         if value is None:
+            if spec.default is None:  # an optional section written as `key:` or `key: null`
+                return None
             value = {}
         if not isinstance(value, dict):
             raise ConfigError(path, f"expected a mapping, got {value!r}", line)

@@ -68,7 +68,8 @@ class Service:
         for dev in cfg.devices:
             cls = load_driver(dev["driver"])
             native = cls.static_info(dev["options"]).native
-            chain = DeviceChain(dev, self.state.zeros(dev["name"]), native)
+            chain = DeviceChain(dev, self.state.zeros(dev["name"]), native,
+                                self.state.gains(dev["name"]))
             chains.append((dev, cls, chain))
         layouts = [chain.device_layout(dev["driver"], self._zero_attrs(dev))
                    for dev, _, chain in chains]
@@ -205,7 +206,7 @@ class Service:
         """The one dispatcher for the control socket and remote (MQTT) commands."""
         if name == "status":
             return self.status()
-        if name in ("tare", "mark"):
+        if name in ("tare", "mark", "shunt-cal"):
             self.emit(make_event("command", origin=origin, command=name,
                                  args={k: v for k, v in args.items()}))
         if name == "tare":
@@ -216,7 +217,86 @@ class Service:
                 raise CommandError("mark needs a non-empty 'text'")
             self.emit(make_event("mark", origin=origin, text=text[:1000]))
             return {"marked": text[:1000]}
+        if name == "shunt-cal":
+            return self._cmd_shunt_cal(args, origin)
         raise CommandError(f"unknown command {name!r}")
+
+    def _cmd_shunt_cal(self, args: dict, origin: str) -> dict:
+        """Switch the shunt in, measure the step, compare with the exact bridge equation.
+
+        The step is mean(shunt on) - mean(shunt off) over `seconds` each. The expected step is
+        what the chain would report for the shunted arm, from the exact forward model at the
+        bridge's present state (found from the unshunted ratio), so a shunt calibration under
+        load is exact too; at zero strain it is -Rg / (GF (Rg + Rs)) for arm 1 of a quarter
+        bridge. The gain error is recorded; it is applied only when `apply` is true.
+        """
+        from straind import bridge
+        assert self.state is not None
+        chan = args.get("channel")
+        if not isinstance(chan, str):
+            raise CommandError("shunt-cal needs 'channel' (CHANNEL or DEVICE/CHANNEL)")
+        (runner, idx), = [(r, i[0]) for r, i in self._resolve_channels([chan]).items()]
+        ch = runner.device["channels"][idx]
+        if ch["sensor"] != "strain_gauge" or not ch.get("shunt"):
+            raise CommandError(f"channel {chan!r} has no shunt resistor configured (shunt.ohm)")
+        if runner.state != "running":
+            raise CommandError(f"device {runner.name_} is {runner.state}")
+        seconds = args.get("seconds", TARE_SECONDS)
+        if isinstance(seconds, bool) or not isinstance(seconds, (int, float)) or not 0 < seconds <= 60:
+            raise CommandError("'seconds' must be a number of seconds in (0, 60]")
+        apply = bool(args.get("apply", False))
+        sh = ch["shunt"]
+        circuit = bridge.circuit_for(ch["bridge"], gauge_ohm=ch["gauge_ohm"],
+                                     completion_ohm=ch["completion_ohm"], lead_ohm=ch["lead_ohm"],
+                                     wiring=ch["wiring"], poisson=ch["poisson"], arms=ch["arms"])
+        n = max(1, int(round(runner.device["sample_rate_hz"] * seconds)))
+        wait = seconds * 4 + 10
+        try:
+            off = runner.capture(idx, n, False, wait)
+            runner.call_driver(lambda d: d.set_shunt(idx, True))
+            try:
+                on = runner.capture(idx, n, True, wait)
+            finally:
+                runner.call_driver(lambda d: d.set_shunt(idx, False))
+        except TimeoutError as exc:
+            raise CommandError(str(exc)) from None
+        except Exception as exc:  # NotSupported, DriverIOError
+            raise CommandError(f"shunt calibration of {chan} failed: {exc}") from None
+        # the expected step, from the exact bridge model at the state the bridge is in now
+        chain = runner.chain
+        v_off = float(np.mean(off.ratios()))
+        x_off, _ = bridge.BridgeInverse(circuit).x_from_ratio(np.array([v_off]))
+        v_on = bridge.shunted_ratio_at(circuit, float(x_off[0]), sh["ohm"], sh["arm"],
+                                       include_lead=not sh["at_gauge"])
+        conv = chain.converters[idx]
+        o = float(chain.offsets()[idx])
+        pair, _ = conv.convert_ratio(np.array([v_on - o, v_off - o]))
+        expected = float(pair[0] - pair[1]) * float(chain.gain_correction[idx])
+        measured = float(np.mean(on.values()) - np.mean(off.values()))
+        gain = measured / expected
+        error_pct = (gain - 1.0) * 100.0
+        within = abs(error_pct) <= sh["tolerance_pct"]
+        old_gc = float(runner.chain.gain_correction[idx])
+        new_gc = old_gc / gain if apply else old_gc
+        now = self.wall_clock_ns()
+        changes: dict[str, Any] = {"shunt_gain": gain, "shunt_taken_ns": now}
+        if apply:
+            changes["gain_correction"] = new_gc
+        st = self.state.update(runner.name_, ch["name"], **changes)
+        if apply:
+            runner.chain.set_gain_correction(idx, new_gc)
+        detail = {"shunt_ohm": sh["ohm"], "arm": sh["arm"], "expected_microstrain": expected,
+                  "measured_microstrain": measured, "gain": gain, "gain_error_pct": error_pct,
+                  "tolerance_pct": sh["tolerance_pct"], "within_tolerance": within,
+                  "applied": apply, "gain_correction": new_gc, "samples": n,
+                  "calibration_version": st.calibration_version}
+        self.emit(make_event("shunt_cal", runner.name_, ch["name"], origin=origin, time_ns=now,
+                             **detail))
+        if not within:
+            self.emit(make_event("shunt_cal_out_of_tolerance", runner.name_, ch["name"],
+                                 origin=origin, gain_error_pct=error_pct,
+                                 tolerance_pct=sh["tolerance_pct"]))
+        return {f"{runner.name_}/{ch['name']}": detail}
 
     def _cmd_tare(self, args: dict, origin: str) -> dict:
         if args.get("all"):

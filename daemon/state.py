@@ -117,6 +117,13 @@ class StateStore:
             return {k[len(prefix):]: v.zero_ratio for k, v in self._channels.items()
                     if k.startswith(prefix) and v.zero_ratio is not None}
 
+    def gains(self, device: str) -> dict[str, float]:
+        """Gain corrections the user applied (channel -> factor), for channels that have one."""
+        prefix = device + "/"
+        with self._lock:
+            return {k[len(prefix):]: v.gain_correction for k, v in self._channels.items()
+                    if k.startswith(prefix) and v.gain_correction != 1.0}
+
     def update(self, device: str, channel: str, **changes: Any) -> ChannelState:
         """Change fields of one channel, bump its calibration version, and save atomically."""
         with self._lock:

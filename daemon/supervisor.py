@@ -75,6 +75,26 @@ class TareRequest:
     error: str | None = None
 
 
+@dataclass
+class CaptureRequest:
+    """Collect `samples` usable engineering values of one channel, with the shunt on or off."""
+
+    channel: int
+    samples: int
+    shunt_on: bool
+    done: threading.Event = field(default_factory=threading.Event)
+    chunks: list = field(default_factory=list)
+    ratio_chunks: list = field(default_factory=list)
+    count: int = 0
+
+    def values(self) -> np.ndarray:
+        return np.concatenate(self.chunks)[: self.samples] if self.chunks else np.empty(0)
+
+    def ratios(self) -> np.ndarray:
+        """Untared bridge ratios (V/V) of the same samples."""
+        return np.concatenate(self.ratio_chunks)[: self.samples] if self.ratio_chunks else np.empty(0)
+
+
 class DeviceRunner(threading.Thread):
     """Runs one device until stopped. Not a daemon thread: it closes its driver on the way out."""
 
@@ -106,6 +126,7 @@ class DeviceRunner(threading.Thread):
         self.last_block_mono = time.monotonic()
         self._rate_window: list[tuple[float, int]] = []
         self._tares: list[TareRequest] = []
+        self._captures: list[CaptureRequest] = []
         self._tare_lock = threading.Lock()
         self._lock = threading.Lock()
         self._pending_gap: dict[str, Any] | None = None
@@ -117,6 +138,22 @@ class DeviceRunner(threading.Thread):
         req = TareRequest(channels=channels, samples=max(1, samples), origin=origin)
         with self._tare_lock:
             self._tares.append(req)
+        return req
+
+    def capture(self, channel: int, samples: int, shunt_on: bool, timeout_s: float
+                ) -> CaptureRequest:
+        """Block the caller until `samples` usable values of `channel` (with SHUNT_ON set or
+        clear as asked) have passed through the chain; return them (values and ratios)."""
+        req = CaptureRequest(channel, max(1, samples), shunt_on)
+        with self._tare_lock:
+            self._captures.append(req)
+        ok = req.done.wait(timeout_s)
+        with self._tare_lock:
+            if req in self._captures:
+                self._captures.remove(req)
+        if not ok:
+            raise TimeoutError(f"device {self.name_}: no {'shunted' if shunt_on else 'unshunted'} "
+                               f"samples of {self.chain.names[channel]} within {timeout_s:g} s")
         return req
 
     def call_driver(self, fn: Callable[[Driver], Any], timeout_s: float = 10.0) -> Any:
@@ -236,6 +273,8 @@ class DeviceRunner(threading.Thread):
         eng = self.chain.convert(block)
         if self._tares:
             self._accumulate_tares(block)
+        if self._captures:
+            self._accumulate_captures(eng)
         for sink in self.sinks:
             sink.submit(eng)
         n = block.n_samples
@@ -267,6 +306,21 @@ class DeviceRunner(threading.Thread):
             req.counts += u.sum(axis=0)
             if (req.counts >= req.samples).all():
                 self._finish_tare(req)
+
+    def _accumulate_captures(self, eng: EngineeringBlock) -> None:
+        with self._tare_lock:
+            reqs = list(self._captures)
+        for req in reqs:
+            q = eng.quality[:, req.channel]
+            shunted = (q & np.uint8(Quality.SHUNT_ON)) != 0
+            ok = ((q & np.uint8(UNUSABLE)) == 0) & (shunted == req.shunt_on)
+            if ok.any():
+                req.chunks.append(eng.values[ok, req.channel].copy())
+                req.ratio_chunks.append(eng.raw.data[ok, req.channel].astype(np.float64)
+                                        * self.chain.ratio_per_code[req.channel])
+                req.count += int(ok.sum())
+            if req.count >= req.samples:
+                req.done.set()
 
     def _finish_tare(self, req: TareRequest) -> None:
         with self._tare_lock:

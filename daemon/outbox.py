@@ -1,0 +1,751 @@
+"""Disk-backed outbox for the MQTT feed: an append-only segment log with a persisted ack position.
+
+Every QoS 1 message of the feed is appended here first and only forgotten once the broker has
+acknowledged it, so broker outages, network loss and restarts of the service (SIGKILL included)
+lose nothing that reached the log. Design, chosen for speed:
+
+* Records go to segment files ``<first record number, 16 hex digits>.seg`` in one directory.
+  Each record is length-prefixed and CRC-checked (layout below); appends are plain buffered
+  writes handed to the OS once per feed-loop pass (`flush`), so a killed process loses nothing
+  that was flushed; `sync` fsyncs the open segment and the state file on a timer (batched, never
+  per message), which bounds what a power loss can take.
+* ``state.json`` (written atomically: temp file, fsync, rename) holds the acknowledged position
+  and the per-stream sequence counters. On open every segment is scanned: a torn tail (a write
+  cut short by a kill) or a corrupted record fails its CRC and is skipped, the rest is kept, and
+  the sequence counters are taken past anything found in the log, so sequence numbers never
+  repeat across restarts.
+* The log is bounded in bytes: when it grows past ``max_bytes`` the oldest whole segment is
+  dropped; the records lost are counted and reported through `take_drops` so the feed can
+  announce them.
+* Records are handed out strictly in order (`next_unsent`); acknowledgements may come in any
+  order, the ack position advances over the contiguous acknowledged prefix.
+
+Record layout (little-endian), 40-byte header then topic and payload:
+
+    offset size field
+    0      4    magic b"SOBX"
+    4      4    length     u32, whole record including this header
+    8      4    crc32      of bytes 12 .. length (zlib.crc32)
+    12     8    rec        u64, record number (contiguous, monotonic across restarts)
+    20     8    seq        u64, sequence number of the record's stream (carried in the payload)
+    28     8    time_ns    u64, UTC ns when appended (for the oldest-unsent age)
+    36     2    topic_len  u16
+    38     1    flags      bit 0 retain, bits 1-2 QoS
+    39     1    reserved   0
+    40     -    topic (UTF-8, topic_len bytes), then payload (the rest)
+
+The outbox is used from one thread (the feed's); a lock makes the read-only counters safe to
+read from others.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import struct
+import threading
+import time
+import zlib
+from collections import deque
+from dataclasses import dataclass
+from typing import Callable
+
+__all__ = ["Outbox", "OutboxRecord", "OutboxDrop", "RECORD_HEADER", "MAGIC"]
+
+MAGIC = b"SOBX"
+#: magic, length, crc32, rec, seq, time_ns, topic_len, flags, reserved
+RECORD_HEADER = struct.Struct("<4sIIQQQHBB")
+_HDR = RECORD_HEADER.size  # 40
+_STATE = "state.json"
+_SUFFIX = ".seg"
+#: Sequence numbers handed out without a log record (QoS 0 streams) are reserved in blocks of
+#: this size in the state file, so they stay monotonic across a kill without a write per message.
+SEQ_RESERVE = 10_000
+
+
+@dataclass(frozen=True)
+class OutboxRecord:
+    """One stored message."""
+
+    rec: int
+    seq: int
+    time_ns: int
+    topic: str
+    payload: bytes
+    qos: int
+    retain: bool
+
+
+@dataclass(frozen=True)
+class OutboxDrop:
+    """Unacknowledged records discarded because the outbox reached its size bound."""
+
+    count: int
+    first_rec: int
+    last_rec: int
+    bytes: int
+    time_ns: int
+
+
+@dataclass
+class _Segment:
+    path: str
+    first_rec: int      # record number the file name announces
+    last_rec: int       # last valid record in it (first_rec - 1 when empty)
+    size: int           # bytes written (valid part)
+    count: int          # valid records
+    skips: dict[int, int]  # corrupt ranges: start offset -> next valid offset (or size)
+    first_time_ns: int = 0
+
+
+def _segment_name(first_rec: int) -> str:
+    return f"{first_rec:016x}{_SUFFIX}"
+
+
+def _pack_header(rec: int, seq: int, time_ns: int, topic_b: bytes, payload: bytes, qos: int,
+                 retain: bool) -> bytes:
+    """Header and topic of a record (the payload follows unchanged)."""
+    length = _HDR + len(topic_b) + len(payload)
+    flags = (1 if retain else 0) | ((qos & 3) << 1)
+    tail = struct.pack("<QQQHBB", rec, seq, time_ns, len(topic_b), flags, 0)
+    crc = zlib.crc32(payload, zlib.crc32(topic_b, zlib.crc32(tail)))
+    return b"".join((struct.pack("<4sII", MAGIC, length, crc), tail, topic_b))
+
+
+def _parse_at(buf: bytes | memoryview, pos: int) -> tuple[int, int, int, int, int, int, int] | None:
+    """Validate the record at `pos`: (length, rec, seq, time_ns, topic_len, flags, 0) or None."""
+    if pos + _HDR > len(buf):
+        return None
+    magic, length, crc, rec, seq, time_ns, topic_len, flags, _ = RECORD_HEADER.unpack_from(buf, pos)
+    if magic != MAGIC or length < _HDR + topic_len or pos + length > len(buf):
+        return None
+    if zlib.crc32(buf[pos + 12:pos + length]) != crc:
+        return None
+    return length, rec, seq, time_ns, topic_len, flags, 0
+
+
+class Outbox:
+    """Bounded, ordered, crash-safe store of messages waiting for a broker acknowledgement.
+
+    path:            directory (created, mode 0700).
+    max_bytes:       bound on the segment files together; past it the oldest segment is dropped.
+    segment_bytes:   size at which a new segment file is started (default max_bytes / 16,
+                     between 64 KiB and 64 MiB) - also the granularity of dropping.
+    sync_interval_s: how often `maybe_sync` fsyncs (seconds).
+    """
+
+    def __init__(self, path: str, max_bytes: int = 256 << 20, segment_bytes: int | None = None,
+                 sync_interval_s: float = 0.5, log: logging.Logger | None = None):
+        self.path = str(path)
+        self.max_bytes = int(max_bytes)
+        if segment_bytes is None:
+            segment_bytes = min(max(self.max_bytes // 16, 64 << 10), 64 << 20)
+        self.segment_bytes = int(segment_bytes)
+        self.sync_interval_s = float(sync_interval_s)
+        self.log = log or logging.getLogger("straind.outbox")
+        self._lock = threading.RLock()
+        self._closed = False
+        os.makedirs(self.path, mode=0o700, exist_ok=True)
+
+        self._segments: list[_Segment] = []
+        self._acked = -1                       # every record <= this is acknowledged
+        self._next_rec = 0
+        self._seq: dict[str, int] = {}          # stream -> next sequence number
+        self._reserved: dict[str, int] = {}     # stream -> reserved (exclusive) for unlogged seqs
+        self.dropped = 0                        # unacknowledged records discarded (size bound)
+        self.corrupt = 0                        # damaged regions skipped at open
+        self._drops: list[OutboxDrop] = []
+        self._unacked = 0
+        self._bytes = 0
+        self._sent: deque[tuple[int, int]] = deque()   # (rec, time_ns) handed out, not acked
+        self._acked_ahead: set[int] = set()
+        self._peeked: OutboxRecord | None = None
+        self._state_dirty = False
+        self._data_dirty = False
+        self._last_sync = time.monotonic()
+        self._bg: threading.Thread | None = None
+        self._unsynced_fds: list[int] = []     # rolled segments not yet fsynced
+        self._state_lock = threading.Lock()
+        self._state_gen = 0
+        self._state_written_gen = 0
+        self._durable_acked = -1
+
+        self._open_existing()
+        self._durable_acked = self._acked
+        # writer on the last segment (created lazily on the first append)
+        self._wfile = None
+        self._wseg: _Segment | None = None
+        self._wbuf_bytes = 0
+        # reader cursor: segment index and byte offset of the next record to hand out
+        self._rseg_i = 0
+        self._roff = 0
+        self._rfd: int | None = None
+        self._rfd_path = ""
+        self._position_reader()
+
+    # ----------------------------------------------------------------------------- open / scan
+    def _open_existing(self) -> None:
+        state = {}
+        state_path = os.path.join(self.path, _STATE)
+        try:
+            with open(state_path, "rb") as fh:
+                state = json.loads(fh.read().decode("utf-8"))
+        except FileNotFoundError:
+            pass
+        except (OSError, ValueError) as exc:
+            self.log.warning("outbox state %s unreadable (%s): replaying everything in the log",
+                             state_path, exc)
+        self._acked = int(state.get("acked", -1))
+        self._next_rec = int(state.get("next_rec", 0))
+        self._seq = {str(k): int(v) for k, v in state.get("seq", {}).items()}
+        self._reserved = {str(k): int(v) for k, v in state.get("reserved", {}).items()}
+        self.dropped = int(state.get("dropped", 0))
+        self.corrupt = int(state.get("corrupt", 0))
+        # unlogged streams restart at their reservation, never below a number already used
+        for stream, upto in self._reserved.items():
+            self._seq[stream] = max(self._seq.get(stream, 0), upto)
+
+        names = sorted(n for n in os.listdir(self.path) if n.endswith(_SUFFIX))
+        last_rec = self._next_rec - 1
+        for i, name in enumerate(names):
+            try:
+                first = int(name[:-len(_SUFFIX)], 16)
+            except ValueError:
+                continue
+            seg = self._scan(os.path.join(self.path, name), first, is_last=(i == len(names) - 1))
+            if seg.count == 0 and seg.last_rec <= self._acked:
+                # an empty segment left behind (e.g. killed right after rolling)
+                if i == len(names) - 1 and seg.size == 0:
+                    self._segments.append(seg)
+                else:
+                    self._remove_file(seg.path)
+                continue
+            self._segments.append(seg)
+            last_rec = max(last_rec, seg.last_rec)
+        self._next_rec = max(self._next_rec, last_rec + 1)
+        self._bytes = sum(s.size for s in self._segments)
+        if self._segments:
+            self._acked = max(self._acked, self._segments[0].first_rec - 1)
+
+    def _scan(self, path: str, first_rec: int, is_last: bool) -> _Segment:
+        with open(path, "rb") as fh:
+            buf = fh.read()
+        seg = _Segment(path, first_rec, first_rec - 1, 0, 0, {})
+        pos = 0
+        n = len(buf)
+        expect = first_rec
+        unacked = 0
+        while pos < n:
+            hit = _parse_at(buf, pos)
+            if hit is None:
+                nxt = self._resync(buf, pos + 1)
+                if nxt is None:
+                    if is_last:
+                        # torn tail from an interrupted write: cut it off so appends continue
+                        self.log.warning("outbox %s: damaged or incomplete record at byte %d "
+                                         "(%d bytes) discarded", path, pos, n - pos)
+                        with open(path, "r+b") as fh:
+                            fh.truncate(pos)
+                        n = pos
+                    else:
+                        self.log.warning("outbox %s: damaged record at byte %d, %d bytes "
+                                         "skipped", path, pos, n - pos)
+                        seg.skips[pos] = n
+                    self.corrupt += 1
+                    self._state_dirty = True
+                    break
+                self.log.warning("outbox %s: damaged record at byte %d, %d bytes skipped",
+                                 path, pos, nxt - pos)
+                seg.skips[pos] = nxt
+                self.corrupt += 1
+                self._state_dirty = True
+                pos = nxt
+                continue
+            length, rec, seq, time_ns, topic_len, flags, _ = hit
+            if rec < expect:
+                # never written by us in this order; treat as damage
+                seg.skips[pos] = pos + length
+                self.corrupt += 1
+                pos += length
+                continue
+            if seg.count == 0:
+                seg.first_time_ns = time_ns
+            expect = rec + 1
+            seg.last_rec = rec
+            seg.count += 1
+            if rec > self._acked:
+                unacked += 1
+            stream = bytes(buf[pos + _HDR:pos + _HDR + topic_len]).decode("utf-8", "replace")
+            if seq + 1 > self._seq.get(stream, 0):
+                self._seq[stream] = seq + 1
+            pos += length
+        seg.size = n
+        self._unacked += unacked
+        return seg
+
+    @staticmethod
+    def _resync(buf: bytes, start: int) -> int | None:
+        """Offset of the next valid record at or after `start`, or None."""
+        pos = start
+        while True:
+            pos = buf.find(MAGIC, pos)
+            if pos < 0:
+                return None
+            if _parse_at(buf, pos) is not None:
+                return pos
+            pos += 1
+
+    def _position_reader(self) -> None:
+        """Put the read cursor on the first record after the ack position."""
+        self._close_reader()
+        self._rseg_i = 0
+        self._roff = 0
+        self._peeked = None
+        while self._rseg_i < len(self._segments):
+            seg = self._segments[self._rseg_i]
+            if seg.last_rec <= self._acked:
+                self._rseg_i += 1
+                continue
+            if seg.first_rec > self._acked:
+                return
+            # skip the acknowledged records at the start of this segment
+            while True:
+                hit = self._read_header(seg, self._roff)
+                if hit is None:
+                    return
+                length, rec = hit[0], hit[1]
+                if rec > self._acked:
+                    return
+                self._roff += length
+            return
+
+    # ------------------------------------------------------------------------------- writing
+    def append(self, topic: str, payload: bytes | Callable[[int], bytes], qos: int = 1,
+               retain: bool = False, stream: str | None = None,
+               time_ns: int | None = None) -> tuple[int, int]:
+        """Store one message; returns (record number, sequence number of its stream).
+
+        `payload` may be a callable taking the sequence number, so the number can be written
+        into the message itself. `stream` names the sequence counter (default: the topic).
+        """
+        with self._lock:
+            self._check_open()
+            stream = topic if stream is None else stream
+            if stream != topic:
+                raise ValueError("a logged stream is its topic (the counter is rebuilt from "
+                                 "the topics in the log)")
+            seq = self._seq.get(stream, 0)
+            body = payload(seq) if callable(payload) else payload
+            topic_b = topic.encode("utf-8")
+            if len(topic_b) > 0xFFFF:
+                raise ValueError("topic too long")
+            t_ns = time.time_ns() if time_ns is None else int(time_ns)
+            rec = self._next_rec
+            body = bytes(body)
+            head = _pack_header(rec, seq, t_ns, topic_b, body, qos, retain)
+            size = len(head) + len(body)
+            seg = self._writer(size)
+            self._wfile.write(head)
+            self._wfile.write(body)
+            self._wbuf_bytes += size
+            if seg.count == 0:
+                seg.first_time_ns = t_ns
+            seg.size += size
+            seg.last_rec = rec
+            seg.count += 1
+            self._bytes += size
+            self._next_rec = rec + 1
+            self._seq[stream] = seq + 1
+            self._unacked += 1
+            self._data_dirty = True
+            self._state_dirty = True
+            if self._bytes > self.max_bytes:
+                self._enforce_bound()
+            return rec, seq
+
+    def allocate_seq(self, stream: str) -> int:
+        """Next sequence number of a stream that is published without the log (QoS 0, status).
+
+        Monotonic across restarts: numbers are reserved in blocks in the state file (a kill
+        may skip numbers, never repeat one).
+        """
+        with self._lock:
+            self._check_open()
+            seq = self._seq.get(stream, 0)
+            if seq + 1 > self._reserved.get(stream, 0):
+                self._reserved[stream] = seq + SEQ_RESERVE
+                self._write_state()
+            self._seq[stream] = seq + 1
+            return seq
+
+    def _writer(self, need: int) -> _Segment:
+        seg = self._wseg
+        if seg is not None and seg.size > 0 and seg.size + need > self.segment_bytes:
+            self._roll()
+            seg = None
+        if seg is None:
+            if self._segments and self._segments[-1].size == 0 and not self._segments[-1].skips:
+                seg = self._segments[-1]
+                # an empty segment is renamed to the record it will really start with
+                if seg.first_rec != self._next_rec:
+                    new_path = os.path.join(self.path, _segment_name(self._next_rec))
+                    os.replace(seg.path, new_path)
+                    seg.path, seg.first_rec, seg.last_rec = new_path, self._next_rec, self._next_rec - 1
+            elif self._segments and not self._segments[-1].skips and \
+                    self._segments[-1].size + need <= self.segment_bytes and \
+                    self._segments[-1].last_rec == self._next_rec - 1:
+                seg = self._segments[-1]        # continue the last segment found at open
+            else:
+                path = os.path.join(self.path, _segment_name(self._next_rec))
+                seg = _Segment(path, self._next_rec, self._next_rec - 1, 0, 0, {})
+                self._segments.append(seg)
+            self._wfile = open(seg.path, "ab", buffering=1 << 20)
+            self._wseg = seg
+            self._fsync_dir()
+        return seg
+
+    def _roll(self) -> None:
+        if self._wfile is not None:
+            self._wfile.flush()
+            self._unsynced_fds.append(os.dup(self._wfile.fileno()))   # fsynced by the next sync
+            self._wfile.close()
+        self._wfile = None
+        self._wseg = None
+        self._wbuf_bytes = 0
+
+    def flush(self) -> None:
+        """Hand buffered appends to the OS (survives a kill of the process; not a power loss)."""
+        with self._lock:
+            if self._wfile is not None and self._wbuf_bytes:
+                self._wfile.flush()
+                self._wbuf_bytes = 0
+
+    def _enforce_bound(self) -> None:
+        while self._bytes > self.max_bytes and self._segments:
+            seg = self._segments[0]
+            if seg is self._wseg:
+                if len(self._segments) == 1 and seg.count <= 1:
+                    # a single record larger than the bound: keep it rather than lose the newest
+                    return
+                self._roll()
+                if len(self._segments) == 1:
+                    # start a fresh segment so the full one can go
+                    path = os.path.join(self.path, _segment_name(self._next_rec))
+                    self._segments.append(_Segment(path, self._next_rec, self._next_rec - 1, 0, 0, {}))
+                    open(path, "ab").close()
+            self._drop_segment()
+
+    def _drop_segment(self) -> None:
+        seg = self._segments.pop(0)
+        lost_first = max(seg.first_rec, self._acked + 1)
+        lost = max(0, seg.last_rec - self._acked) if seg.last_rec > self._acked else 0
+        lost = min(lost, seg.count)
+        if lost:
+            self.dropped += lost
+            self._unacked -= lost
+            self._drops.append(OutboxDrop(lost, lost_first, seg.last_rec, seg.size, time.time_ns()))
+            self.log.debug("outbox full (%d bytes > %d): dropped %d unsent message(s), "
+                             "records %d..%d", self._bytes, self.max_bytes, lost, lost_first,
+                             seg.last_rec)
+        self._acked = max(self._acked, seg.last_rec)
+        while self._sent and self._sent[0][0] <= self._acked:
+            self._sent.popleft()
+        self._acked_ahead = {r for r in self._acked_ahead if r > self._acked}
+        self._bytes -= seg.size
+        # the reader moves on if it was inside the dropped segment
+        if self._rseg_i == 0:
+            self._close_reader()
+            self._roff = 0
+            self._peeked = None
+        else:
+            self._rseg_i -= 1
+        if self._peeked is not None and self._peeked.rec <= self._acked:
+            self._peeked = None
+        self._remove_file(seg.path)
+        self._state_dirty = True
+
+    def take_drops(self) -> list[OutboxDrop]:
+        """Drops since the last call (for announcing them)."""
+        with self._lock:
+            out, self._drops = self._drops, []
+            return out
+
+    # ------------------------------------------------------------------------------- reading
+    def _open_reader(self, seg: _Segment) -> int:
+        if self._rfd is None or self._rfd_path != seg.path:
+            self._close_reader()
+            self._rfd = os.open(seg.path, os.O_RDONLY)
+            self._rfd_path = seg.path
+        return self._rfd
+
+    def _close_reader(self) -> None:
+        if self._rfd is not None:
+            os.close(self._rfd)
+        self._rfd = None
+        self._rfd_path = ""
+
+    def _read_header(self, seg: _Segment, off: int):
+        while off in seg.skips:
+            off = seg.skips[off]
+            self._roff = off
+        if off + _HDR > seg.size:
+            return None
+        if seg is self._wseg and self._wbuf_bytes:
+            self.flush()
+        fd = self._open_reader(seg)
+        hdr = os.pread(fd, _HDR, off)
+        if len(hdr) < _HDR:
+            return None
+        magic, length, crc, rec, seq, time_ns, topic_len, flags, _ = RECORD_HEADER.unpack(hdr)
+        return length, rec, seq, time_ns, topic_len, flags, crc
+
+    def _read_record(self) -> OutboxRecord | None:
+        while self._rseg_i < len(self._segments):
+            seg = self._segments[self._rseg_i]
+            hit = self._read_header(seg, self._roff)
+            if hit is None:
+                if seg is self._wseg or self._rseg_i == len(self._segments) - 1:
+                    return None
+                self._rseg_i += 1
+                self._roff = 0
+                continue
+            length, rec, seq, time_ns, topic_len, flags, crc = hit
+            body = os.pread(self._rfd, length - _HDR, self._roff + _HDR)
+            self._roff += length
+            if rec <= self._acked:
+                continue
+            topic = body[:topic_len].decode("utf-8")
+            return OutboxRecord(rec, seq, time_ns, topic, body[topic_len:], (flags >> 1) & 3,
+                                bool(flags & 1))
+        return None
+
+    def peek(self) -> OutboxRecord | None:
+        """The next record `next_unsent` would return, without handing it out."""
+        with self._lock:
+            self._check_open()
+            if self._peeked is None:
+                self._peeked = self._read_record()
+            return self._peeked
+
+    def next_unsent(self) -> OutboxRecord | None:
+        """Hand out the next record in order (it stays stored until `ack`)."""
+        with self._lock:
+            rec = self.peek()
+            self._peeked = None
+            if rec is not None:
+                self._sent.append((rec.rec, rec.time_ns))
+            return rec
+
+    def ack(self, rec: int) -> None:
+        """The broker acknowledged record `rec`; advance over the acknowledged prefix."""
+        with self._lock:
+            if rec <= self._acked or not self._sent:
+                return
+            if rec == self._sent[0][0] and not self._acked_ahead:
+                self._sent.popleft()            # the usual case: acknowledgements in order
+                self._acked = rec
+                self._unacked -= 1
+                self._state_dirty = True
+                return
+            if not (self._sent[0][0] <= rec <= self._sent[-1][0]):
+                return                          # not handed out (or already forgotten)
+            self._acked_ahead.add(rec)
+            while self._sent and self._sent[0][0] in self._acked_ahead:
+                r, _ = self._sent.popleft()
+                self._acked_ahead.discard(r)
+                self._acked = r
+                self._unacked -= 1
+                self._state_dirty = True
+
+    def rewind(self) -> None:
+        """Forget what was handed out and not acknowledged: it will be handed out again."""
+        with self._lock:
+            self._sent.clear()
+            self._acked_ahead.clear()
+            self._position_reader()
+
+    # ------------------------------------------------------------------------------- syncing
+    def maybe_sync(self) -> bool:
+        """Start a background sync if the sync interval has passed; True if it did.
+
+        The fsyncs run on a short-lived helper thread so the feed thread never waits for the
+        disk; segments are removed only once a written state file covers their records.
+        """
+        with self._lock:
+            if self._closed:
+                return False
+            self._remove_acked_segments(self._durable_acked)
+            if self._bg is not None and self._bg.is_alive():
+                return False
+            if time.monotonic() - self._last_sync < self.sync_interval_s:
+                return False
+            fds, state = self._prepare_sync()
+            if not fds and state is None:
+                self._last_sync = time.monotonic()
+                return False
+            self._bg = threading.Thread(target=self._finish_sync, args=(fds, state),
+                                        name="straind-outbox-sync", daemon=True)
+            self._bg.start()
+            return True
+
+    def sync(self) -> None:
+        """fsync the open segment, persist the ack position and remove acknowledged segments
+        (blocking)."""
+        bg = self._bg
+        if bg is not None:
+            bg.join()
+        with self._lock:
+            if self._closed:
+                return
+            fds, state = self._prepare_sync()
+            self._finish_sync(fds, state)
+            self._remove_acked_segments(self._durable_acked)
+
+    def _prepare_sync(self) -> tuple[list[int], dict | None]:
+        """Hand data to the OS and collect what the sync must make durable (under the lock)."""
+        self._last_sync = time.monotonic()
+        fds, self._unsynced_fds = self._unsynced_fds, []
+        if self._wfile is not None and (self._data_dirty or self._wbuf_bytes):
+            self._wfile.flush()
+            self._wbuf_bytes = 0
+            fds.append(os.dup(self._wfile.fileno()))
+        self._data_dirty = False
+        state = None
+        if self._state_dirty:
+            state = self._state_doc()
+            self._state_dirty = False
+        return fds, state
+
+    def _finish_sync(self, fds: list[int], state: dict | None) -> None:
+        for fd in fds:
+            try:
+                os.fsync(fd)
+            except OSError as exc:  # pragma: no cover - disk trouble
+                self.log.error("outbox fsync failed: %s", exc)
+            finally:
+                os.close(fd)
+        if state is not None:
+            self._write_state_doc(state)
+            self._durable_acked = max(self._durable_acked, state["acked"])
+
+    def _remove_acked_segments(self, acked: int) -> None:
+        removed = False
+        while len(self._segments) > 1 and self._segments[0].last_rec <= acked \
+                and self._segments[0] is not self._wseg:
+            seg = self._segments.pop(0)
+            self._bytes -= seg.size
+            if self._rseg_i > 0:
+                self._rseg_i -= 1
+            else:
+                self._close_reader()
+                self._roff = 0
+            self._remove_file(seg.path)
+            removed = True
+        if removed:
+            self._fsync_dir()
+
+    def _state_doc(self) -> dict:
+        self._state_gen += 1
+        return {"version": 1, "gen": self._state_gen, "acked": self._acked,
+                "next_rec": self._next_rec, "seq": dict(self._seq),
+                "reserved": dict(self._reserved), "dropped": self.dropped,
+                "corrupt": self.corrupt}
+
+    def _write_state(self) -> None:
+        """Write the current state now (blocking)."""
+        self._write_state_doc(self._state_doc())
+
+    def _write_state_doc(self, state: dict) -> None:
+        with self._state_lock:
+            if state["gen"] <= self._state_written_gen:
+                return                    # a newer state is already on disk
+            path = os.path.join(self.path, _STATE)
+            tmp = path + ".tmp"
+            with open(tmp, "wb") as fh:
+                fh.write(json.dumps(state, sort_keys=True).encode("utf-8"))
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, path)
+            self._state_written_gen = state["gen"]
+
+    def _fsync_dir(self) -> None:
+        try:
+            fd = os.open(self.path, os.O_RDONLY)
+        except OSError:
+            return
+        try:
+            os.fsync(fd)
+        except OSError:
+            pass
+        finally:
+            os.close(fd)
+
+    def _remove_file(self, path: str) -> None:
+        try:
+            os.remove(path)
+        except FileNotFoundError:
+            pass
+
+    def close(self) -> None:
+        """sync and release the files; idempotent."""
+        with self._lock:
+            if self._closed:
+                return
+            self.sync()
+            if self._wfile is not None:
+                self._wfile.close()
+                self._wfile = None
+            self._close_reader()
+            self._closed = True
+
+    def _check_open(self) -> None:
+        if self._closed:
+            raise ValueError("outbox is closed")
+
+    # ---------------------------------------------------------------------------- inspection
+    @property
+    def depth(self) -> int:
+        """Messages stored and not yet acknowledged (sent or not)."""
+        return self._unacked
+
+    @property
+    def in_flight(self) -> int:
+        """Messages handed out and waiting for their acknowledgement."""
+        return len(self._sent)
+
+    @property
+    def bytes(self) -> int:
+        """Bytes of the segment files."""
+        return self._bytes
+
+    @property
+    def acked_position(self) -> int:
+        return self._acked
+
+    @property
+    def next_record(self) -> int:
+        return self._next_rec
+
+    def next_seq(self, stream: str) -> int:
+        """The sequence number the next message of `stream` will get."""
+        return self._seq.get(stream, 0)
+
+    def oldest_unacked_time_ns(self) -> int | None:
+        """Append time of the oldest message not yet acknowledged, or None when empty."""
+        with self._lock:
+            if self._sent:
+                return self._sent[0][1]
+            if self._unacked <= 0 or self._closed:
+                return None
+            rec = self.peek()
+            return None if rec is None else rec.time_ns
+
+    def stats(self) -> dict:
+        """Counters for status reports."""
+        oldest = self.oldest_unacked_time_ns()
+        return {"path": self.path, "depth": self.depth, "in_flight": self.in_flight,
+                "bytes": self.bytes, "max_bytes": self.max_bytes, "dropped": self.dropped,
+                "corrupt_skipped": self.corrupt,
+                "oldest_unsent_age_s": None if oldest is None
+                else max(0.0, (time.time_ns() - oldest) / 1e9)}
