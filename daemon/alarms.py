@@ -142,7 +142,7 @@ class AlarmState:
 
     rule: AlarmRule
     active: bool = False
-    _run_since_ns: int | None = field(default=None, repr=False)
+    _run_since_ns: int | None = field(default=None, init=False, repr=False)
     rate: CreepRate | None = field(default=None, repr=False)
 
     def __post_init__(self) -> None:
