@@ -3,12 +3,13 @@
 Acquisition hands engineering blocks to `Store.submit`, which never blocks: it appends to an
 in-memory queue bounded in bytes (`queue_mb`) and returns False, counting the block and raising a
 `storage_drop` event, when the queue is full. One writer thread owns the h5py file. It wakes on the
-flush timer (`flush_interval_s`), or earlier when the queue fills past a quarter of its bound or a
+flush timer (`flush_interval_s`), or earlier when the queue holds min(queue_mb/4, 16 MiB) or a
 new segment / stop is asked for, takes everything queued, coalesces the blocks of each device into
-one append per dataset (one `set_extent` and one `write` on the dataset id), and flushes once per
-interval, never per block. Files are opened with libver='latest' and switched to SWMR mode once
-every object exists, so readers can open a segment with `h5py.File(path, 'r', swmr=True)` while it
-is written, and a kill -9 loses at most about one flush interval of data and never the file.
+one append per dataset (one `set_extent` and one `write` on the dataset id; at most ~4 MiB per
+append), and flushes once per interval when something was written, never per block. Files are
+opened with libver='latest' and switched to SWMR mode once every object exists, so readers can
+open a segment with `h5py.File(path, 'r', swmr=True)` while it is written, and a kill -9 loses at
+most about one flush interval of data and never the file.
 
 Segments
 --------
@@ -23,7 +24,8 @@ and `-` in the station id become `_`). A new segment begins
   the rest begin the new one (both parts keep the block's seq; the second part's start_index and
   t0_ns are advanced). Blocks of other devices that still hold earlier samples go to the new
   segment: a closed segment is never reopened for writing,
-* when the next append would take the file past `segment_max_mb` (never for an empty segment),
+* when the next block would take the file past `segment_max_mb` (never for an empty segment; the
+  cap is approximate: chunk allocation can take a file about one chunk per dataset past it),
 * on `Store.new_segment()` (configuration reload, channel set change), after everything queued,
 * after three failed write attempts in a row (the faulty file is given up, see "Write errors").
 
@@ -32,7 +34,13 @@ given its `.h5` name, so every `*.h5` file is complete. While open, the writer h
 file description lock (fcntl F_OFD_SETLK, write lock on the single byte at offset 2**62, beyond any
 data) so `recover_unclosed` can tell a live writer from a killed one (HDF5 drops its own flock
 when SWMR writing starts). A segment with no blocks yet opens for pending events at a flush, named
-from the wall clock.
+from the wall clock. Stale `*.h5.tmp` files (a writer killed while creating one) are removed by
+`Store.start()`.
+
+Threads: `submit`, `record_event`, `new_segment`, `stop` and `status` may be called from any
+thread (blocks submitted before `start` are queued). `on_event` is called from the submitting
+thread for `storage_drop` and from the writer thread for the others; it must not block. The store
+writes its own events to `/events` itself; handing them back through `record_event` is a no-op.
 
 Layout of one segment file
 --------------------------
@@ -718,11 +726,19 @@ class Store:
                 log.warning("HDF5 writer still busy after %.1f s", timeout_s)
 
     def status(self) -> dict[str, Any]:
-        """Counters for the status command and the watchdog (a consistent snapshot)."""
+        """Counters for the status command and the watchdog (a consistent snapshot).
+
+        segment_path (open file or None), segments_written, rows / flushed_rows (per device, in
+        the open segment), rows_total (per device, since start), queue_blocks, queue_bytes
+        (queued plus taken but not yet written), queue_limit_bytes, queue_events,
+        dropped_blocks, dropped_rows, dropped_events, lost_blocks (unwritable at stop),
+        events_written, last_flush_wall_ns, flush_count, write_errors, last_error, faulted,
+        running.
+        """
         with self._lock:
             c = self._c
             return {
-                "segment": c.segment,
+                "segment_path": c.segment,
                 "segments_written": c.segments_written,
                 "rows": dict(c.rows),
                 "rows_total": dict(c.rows_total),
@@ -969,8 +985,8 @@ class Store:
             sets = seg.devices[device]
             cap_rows = max(1, _MAX_APPEND_BYTES // sets.row_bytes)
             while pieces:
-                # at most ~4 MiB per append: h5py holds the GIL inside HDF5, so smaller appends
-                # let the acquisition thread in between (whole blocks only: never split here)
+                # at most ~4 MiB per append (whole blocks; never split here): bounds the
+                # temporary copy made by the coalescing concatenate
                 n_take, rows = 0, 0
                 while n_take < len(pieces) and (n_take == 0 or rows + pieces[n_take].n <= cap_rows):
                     rows += pieces[n_take].n
@@ -1097,6 +1113,7 @@ class Store:
         self._fault_errors = 0
         with self._lock:
             self._c.faulted = False
+            self._wake = True          # take what queued up during the fault right away
         self._raise_fault_event("storage_recovered", detail)
 
     # ---------------------------------------------------------------- segments
