@@ -133,16 +133,23 @@ class Outbox:
     segment_bytes:   size at which a new segment file is started (default max_bytes / 16,
                      between 64 KiB and 64 MiB) - also the granularity of dropping.
     sync_interval_s: how often `maybe_sync` fsyncs (seconds).
+    cache_bytes:     recent appends kept in memory for sending (0: always read back).
     """
 
     def __init__(self, path: str, max_bytes: int = 256 << 20, segment_bytes: int | None = None,
-                 sync_interval_s: float = 0.5, log: logging.Logger | None = None):
+                 sync_interval_s: float = 0.5, log: logging.Logger | None = None,
+                 cache_bytes: int = 32 << 20):
         self.path = str(path)
         self.max_bytes = int(max_bytes)
         if segment_bytes is None:
             segment_bytes = min(max(self.max_bytes // 16, 64 << 10), 64 << 20)
         self.segment_bytes = int(segment_bytes)
         self.sync_interval_s = float(sync_interval_s)
+        #: recent appends kept in memory so that sending them needs no read back from disk
+        self.cache_bytes = int(cache_bytes)
+        self._cache: dict[tuple[str, int], tuple[OutboxRecord, int]] = {}
+        self._cache_bytes = 0
+        self._doomed: list[str] = []          # segment files to delete on the sync thread
         self.log = log or logging.getLogger("straind.outbox")
         self._lock = threading.RLock()
         self._closed = False
@@ -304,9 +311,11 @@ class Outbox:
         self._peeked = None
         while self._rseg_i < len(self._segments):
             seg = self._segments[self._rseg_i]
-            if seg.last_rec <= self._acked:
+            if seg.last_rec <= self._acked and self._rseg_i < len(self._segments) - 1:
                 self._rseg_i += 1
                 continue
+            # the last segment stays the reader's even when fully acknowledged: appends may
+            # continue it
             if seg.first_rec > self._acked:
                 return
             # skip the acknowledged records at the start of this segment
@@ -346,6 +355,13 @@ class Outbox:
             head = _pack_header(rec, seq, t_ns, topic_b, body, qos, retain)
             size = len(head) + len(body)
             seg = self._writer(size)
+            if self.cache_bytes:
+                self._cache[(seg.path, seg.size)] = (
+                    OutboxRecord(rec, seq, t_ns, topic, body, qos, bool(retain)), size)
+                self._cache_bytes += size
+                while self._cache_bytes > self.cache_bytes and self._cache:
+                    _, old_size = self._cache.pop(next(iter(self._cache)))
+                    self._cache_bytes -= old_size
             self._wfile.write(head)
             self._wfile.write(body)
             self._wbuf_bytes += size
@@ -462,8 +478,17 @@ class Outbox:
             self._rseg_i -= 1
         if self._peeked is not None and self._peeked.rec <= self._acked:
             self._peeked = None
-        self._remove_file(seg.path)
+        self._forget_segment(seg)
         self._state_dirty = True
+
+    def _forget_segment(self, seg: _Segment) -> None:
+        """A segment leaves the log: its file is deleted by the next sync (off this thread)."""
+        if self._rfd_path == seg.path:
+            self._close_reader()
+        if self._cache:
+            for key in [k for k in self._cache if k[0] == seg.path]:
+                self._cache_bytes -= self._cache.pop(key)[1]
+        self._doomed.append(seg.path)
 
     def take_drops(self) -> list[OutboxDrop]:
         """Drops since the last call (for announcing them)."""
@@ -503,6 +528,16 @@ class Outbox:
     def _read_record(self) -> OutboxRecord | None:
         while self._rseg_i < len(self._segments):
             seg = self._segments[self._rseg_i]
+            while self._roff in seg.skips:
+                self._roff = seg.skips[self._roff]
+            cached = self._cache.pop((seg.path, self._roff), None)
+            if cached is not None:          # appended by this process: no need to read it back
+                record, length = cached
+                self._cache_bytes -= length
+                self._roff += length
+                if record.rec <= self._acked:
+                    continue
+                return record
             hit = self._read_header(seg, self._roff)
             if hit is None:
                 if seg is self._wseg or self._rseg_i == len(self._segments) - 1:
@@ -580,11 +615,10 @@ class Outbox:
                 return False
             if time.monotonic() - self._last_sync < self.sync_interval_s:
                 return False
-            fds, state = self._prepare_sync()
-            if not fds and state is None:
-                self._last_sync = time.monotonic()
+            work = self._prepare_sync()
+            if not work[0] and work[1] is None and not work[2]:
                 return False
-            self._bg = threading.Thread(target=self._finish_sync, args=(fds, state),
+            self._bg = threading.Thread(target=self._finish_sync, args=work,
                                         name="straind-outbox-sync", daemon=True)
             self._bg.start()
             return True
@@ -598,13 +632,14 @@ class Outbox:
         with self._lock:
             if self._closed:
                 return
-            fds, state = self._prepare_sync()
-            self._finish_sync(fds, state)
-            self._remove_acked_segments(self._durable_acked)
+            self._finish_sync(*self._prepare_sync())
+            if self._remove_acked_segments(self._durable_acked):
+                self._finish_sync(*self._prepare_sync())
 
-    def _prepare_sync(self) -> tuple[list[int], dict | None]:
+    def _prepare_sync(self) -> tuple[list[int], dict | None, list[str]]:
         """Hand data to the OS and collect what the sync must make durable (under the lock)."""
         self._last_sync = time.monotonic()
+        doomed, self._doomed = self._doomed, []
         fds, self._unsynced_fds = self._unsynced_fds, []
         if self._wfile is not None and (self._data_dirty or self._wbuf_bytes):
             self._wfile.flush()
@@ -615,9 +650,13 @@ class Outbox:
         if self._state_dirty:
             state = self._state_doc()
             self._state_dirty = False
-        return fds, state
+        return fds, state, doomed
 
-    def _finish_sync(self, fds: list[int], state: dict | None) -> None:
+    def _finish_sync(self, fds: list[int], state: dict | None, doomed: list[str]) -> None:
+        for path in doomed:
+            self._remove_file(path)
+        if doomed:
+            self._fsync_dir()
         for fd in fds:
             try:
                 os.fsync(fd)
@@ -629,7 +668,7 @@ class Outbox:
             self._write_state_doc(state)
             self._durable_acked = max(self._durable_acked, state["acked"])
 
-    def _remove_acked_segments(self, acked: int) -> None:
+    def _remove_acked_segments(self, acked: int) -> bool:
         removed = False
         while len(self._segments) > 1 and self._segments[0].last_rec <= acked \
                 and self._segments[0] is not self._wseg:
@@ -640,10 +679,9 @@ class Outbox:
             else:
                 self._close_reader()
                 self._roff = 0
-            self._remove_file(seg.path)
+            self._forget_segment(seg)
             removed = True
-        if removed:
-            self._fsync_dir()
+        return removed
 
     def _state_doc(self) -> dict:
         self._state_gen += 1
