@@ -7,8 +7,10 @@ Contract (checked by tests/test_driver_contract.py for every registered driver):
 
 * ``__init__(setup, options)`` only stores its validated arguments; it touches no hardware.
 * ``open()`` connects; a missing device raises `DriverIOError` (the supervisor retries).
-* ``read_block(timeout_s)`` returns the next `Block` of ``setup.block_samples`` rows (fewer only
-  at the end of a finite source), or ``None`` if none is ready within ``timeout_s`` seconds;
+* ``read_block(timeout_s)`` returns the next `Block` of ``setup.block_samples`` rows, or
+  ``None`` if none is ready within ``timeout_s`` seconds. A block may be shorter at the end of a
+  finite source, just before a gap in the sample counter (a block never spans lost samples) and
+  just before a fault;
   a vanished device or unrecoverable stream raises `DriverIOError`; a finite source that is
   exhausted raises `EndOfStream`.
 * ``close()`` releases everything and may be called any number of times, even if ``open()``
