@@ -58,8 +58,27 @@ def _fmt(v: float) -> str:
     return f"{v:.6g}"
 
 
+def _arrangement(ch: dict) -> str:
+    """The 'bridge' column of the check table: bridge, quantity or temperature sensor model."""
+    if ch["sensor"] == "rtd":
+        return f"{ch['element']} {ch['wiring']}"
+    if ch["sensor"] == "thermocouple":
+        cj = (f"CJ {ch['junction_channel']}" if ch["junction_channel"] is not None
+              else f"CJ {ch['junction_c']:g} degC")
+        return f"type {ch['type']}, {cj}"
+    return ch.get("bridge") or ch.get("quantity", "")
+
+
+def _print_table(header: Sequence[str], rows: list[Sequence[str]]) -> None:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(header)]
+    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    for r in rows:
+        print("  ".join(c.ljust(w) for c, w in zip(r, widths)))
+
+
 def cmd_check(args: argparse.Namespace) -> int:
     from straind.chain import DeviceChain
+    from straind.config import channel_reference, config_warnings
     from straind.plugins import load_driver
     cfg = _load(args.config)
     print(f"configuration {cfg.source}: valid")
@@ -67,24 +86,39 @@ def cmd_check(args: argparse.Namespace) -> int:
     header = ("device", "channel", "sensor", "bridge", "GF", "exc V", "gain", "range min",
               "range max", "per code", "unit")
     rows = []
+    derived = []
     for dev in cfg.devices:
         cls = load_driver(dev["driver"])
         native = cls.static_info(dev["options"]).native
         chain = DeviceChain(dev, None, native)
         for ch, rng in zip(dev["channels"], chain.range_table()):
-            rows.append((dev["name"], ch["name"], ch["sensor"],
-                         ch.get("bridge") or ch.get("quantity", ""),
+            exc = ch.get("excitation_v")
+            gain = channel_reference(ch, dev["adc"])[0] if dev.get("adc") else "-"
+            rows.append((dev["name"], ch["name"], ch["sensor"], _arrangement(ch),
                          _fmt(ch["gauge_factor"]) if "gauge_factor" in ch else "-",
-                         _fmt(ch["excitation_v"]),
-                         str((dev.get("adc") or {}).get("gain", "-")),
+                         "-" if exc is None else _fmt(exc), str(gain),
                          _fmt(rng["min"]), _fmt(rng["max"]), _fmt(rng["resolution"]),
                          rng["unit"]))
-    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(header)]
-    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
-    for r in rows:
-        print("  ".join(c.ljust(w) for c, w in zip(r, widths)))
+        for lay in chain.channel_layouts():
+            if not lay.measured:
+                derived.append((dev["name"], lay.name, str(lay.attrs.get("derived_kind", "")),
+                                str(lay.attrs.get("inputs", "")).replace(",", ", "), lay.unit))
+    _print_table(header, rows)
     print("range: value at the converter's full-scale codes from the current zero (untared "
-          "here); per code: change of the value for one code step at zero.")
+          "here); per code: change of the value for one code step at zero (temperature "
+          "channels: the span the sensor function reaches within the codes, per code at "
+          "0 degC; a thermocouple with a junction channel is shown with its junction at 0 degC).")
+    if derived:
+        print()
+        _print_table(("device", "derived column", "kind", "inputs", "unit"), derived)
+    alarms = cfg.data.get("alarms") or []
+    if alarms:
+        print()
+        _print_table(("alarm", "channel", "kind", "limit", "hysteresis", "hold s", "severity"),
+                     [(a["name"], f"{a['device']}/{a['column']}", a["kind"], _fmt(a["limit"]),
+                       _fmt(a["hysteresis"]), _fmt(a["hold_s"]), a["severity"]) for a in alarms])
+    for w in config_warnings(cfg.data):
+        print(f"warning: {w}")
     return 0
 
 
@@ -152,24 +186,49 @@ def _print_status(st: dict) -> None:
               f"{store.get('write_errors')}")
     feed = st.get("feed")
     if feed:
-        print(f"feed: {feed.get('broker_state', feed)}")
+        print(f"feed: {feed.get('broker', feed)}")
     for name, d in st["devices"].items():
         print(f"device {name} ({d['driver']}): {d['state']}, {d['measured_rate_hz']:.1f} of "
               f"{d['sample_rate_hz']:g} S/s, {d['samples']} samples, reconnects {d['reconnects']}"
               + (f", last error: {d['last_error']}" if d["last_error"] else ""))
         values = d.get("last_values") or {}
+        width = max([16] + [len(c) for c in d["units"]])
         for ch, unit in d["units"].items():
             v = values.get(ch)
-            z = d["zeros"].get(ch, {})
-            if z.get("taken_ns"):
+            z = d["zeros"].get(ch)
+            if z is None:
+                zs = ""  # temperature channel or derived column: no zero of its own
+            elif z.get("taken_ns"):
                 tz = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(z["taken_ns"] / 1e9))
                 zs = f"zero {tz} ({z['origin']}, cal v{z['calibration_version']})"
             else:
                 zs = "no zero taken"
             vs = "-" if v is None else f"{v:.4f}"
-            print(f"  {ch:<16} {vs:>14} {unit:<12} {zs}")
+            print(f"  {ch:<{width}} {vs:>14} {unit:<13} {zs}".rstrip())
     for alarm in st.get("alarms", []) or []:
-        print(f"ALARM {alarm}")
+        if not isinstance(alarm, dict):
+            print(f"ALARM {alarm}")
+            continue
+        since = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(alarm["raised_ns"] / 1e9))
+        print(f"ALARM {alarm['severity'].upper()} {alarm['name']}: {alarm['device']}/"
+              f"{alarm['channel']} {alarm['kind']} {alarm['value']:.6g} {alarm['unit']} "
+              f"(limit {alarm['limit']:g}) since {since}")
+    _print_faults(st)
+
+
+def _print_faults(st: dict) -> None:
+    """Service faults (storage, disk space, clock, stuck or reconnecting devices) and counts."""
+    for fault in st.get("faults") or []:
+        since = (time.strftime(" since %Y-%m-%dT%H:%M:%SZ", time.gmtime(fault["since_ns"] / 1e9))
+                 if fault.get("since_ns") else "")
+        who = f" {fault['device']}" if fault.get("device") else ""
+        print(f"FAULT {fault['kind']}{who}: {fault.get('detail', '')}{since}")
+    counters = st.get("counters") or {}
+    events = counters.get("events") or {}
+    if events:
+        held = counters.get("log_lines_suppressed", 0)
+        print("events: " + ", ".join(f"{k} {v}" for k, v in sorted(events.items()))
+              + f"; log lines held back by the rate limit: {held}")
 
 
 def cmd_status(args: argparse.Namespace) -> int:

@@ -66,7 +66,17 @@ Channel options (``devices[].channels[].options``):
                    rupture_s (optional, absolute truth time): the gauge breaks and the
                    channel reads as an open bridge from then on.
     true_gauge_factor     the gauge's real gauge factor when it differs from the configured one.
-    true_gauge_factor2    quadratic gauge coefficient (dR/R = GF eps + GF2 eps^2), default 0.
+    true_gauge_factor2    quadratic gauge coefficient (dR/R = GF eps + GF2 eps^2); default the
+                          configured gauge_factor_2 (0 when absent).
+    thermal_output_microstrain  [A0..A4]: the gauge's thermal output eps_app(T) in microstrain
+                          (T in degC) as indicated at its own gauge factor; with temperature_from
+                          it is added to the strain truth before the bridge model.
+    temperature_from      name of a temperature channel (rtd or thermocouple) of this device whose
+                          truth is the gauge temperature (for thermal_output_microstrain and
+                          gf_alpha_per_c).
+    gf_alpha_per_c        temperature coefficient of the real gauge factor (1/degC, default 0):
+                          GF(T) = GF (1 + alpha (T - gf_ref_temp_c)), applied to the mechanical
+                          strain; gf_ref_temp_c default 24 degC.
     true_lead_ohm         the real resistance of each lead wire, ohm.
     gauge_ohm_offset      ohm added to the unstrained resistance of the first gauge arm, or a
                           list of four (one per arm, completion arms included): an initial
@@ -79,6 +89,16 @@ Channel options (``devices[].channels[].options``):
     true_rated_output_mv_per_v  a transducer's real sensitivity, mV/V at capacity.
     bridge_ohm            arm resistance of a bridge transducer (for its shunt), default 350.
     noise_nv_per_v        this channel's noise RMS, nV/V, instead of the device's.
+
+Temperature channels (``sensor: rtd`` / ``thermocouple``): the truth is in degC (kinds
+constant, steps, ramp, sine; not creep), clipped into the sensor function's range.
+RTD: R = Callendar-Van Dusen R(T) of the element (straind.temperature's forward function) plus
+2 RL for a 2-wire connection (3- and 4-wire connections compensate the leads); the input is
+R / reference_ohm (full scale = reference_ohm), code = input x 2**23 x gain.
+Thermocouple: emf = E(T) - E(T_junction) (ITS-90 reference functions), T_junction from the truth
+of the ``junction_channel`` or the fixed ``junction_c``; the input is emf / vref_v.
+For both, the noise (nV/V), mains pickup and drift are relative to the converter reference.
+Each channel may set its own ``gain``, ``reference`` and ``vref_v`` (else the adc section's).
 
 Lead placement (RL = lead resistance, the project's convention): quarter 2-wire: 2 RL in arm 1;
 quarter 3-wire: RL in arms 1 and 2; half-bending / half-poisson: 2-wire 2 RL in arms 1 and 2,
@@ -112,6 +132,7 @@ from straind.drivers.base import (
     NotSupported,
 )
 from straind.schema import ConfigError, Field, ListOf, Section, line_of, validate
+from straind import temperature as _temperature
 
 __all__ = [
     "PAGE_SAMPLES",
@@ -284,7 +305,15 @@ _SIM_OPTIONS = Section(dict(SIM_OPTION_FIELDS), open_keys=True)
 CHANNEL_OPTIONS = Section({
     "truth": Field(_check_truth, doc="truth scenario (kind + parameters)"),
     "true_gauge_factor": Field(float, None, nullable=True, doc="real gauge factor"),
-    "true_gauge_factor2": Field(float, 0.0, doc="quadratic gauge coefficient (per strain^2)"),
+    "true_gauge_factor2": Field(float, None, nullable=True,
+                                doc="quadratic gauge coefficient (per strain^2); default as configured"),
+    "thermal_output_microstrain": Field(_number_list(1), None, nullable=True,
+                                        doc="thermal output A0..A4 (T in degC)", unit="microstrain"),
+    "temperature_from": Field(str, None, nullable=True,
+                              doc="temperature channel whose truth is the gauge temperature"),
+    "gf_alpha_per_c": Field(float, 0.0, doc="temperature coefficient of the real gauge factor",
+                            unit="1/degC"),
+    "gf_ref_temp_c": Field(float, 24.0, doc="temperature of the stated gauge factor", unit="degC"),
     "true_lead_ohm": Field(float, None, nullable=True, min=0.0, doc="real lead resistance",
                            unit="ohm"),
     "gauge_ohm_offset": Field(_check_ohm_offset, 0.0, doc="unstrained resistance offset",
@@ -466,12 +495,28 @@ class BridgeSimulator:
         self.units: list[str] = []
         self._truth_cfg: list[dict] = []
         self._rupture_s = np.full(m, np.inf)
+        self._rtd: dict[int, tuple[float, float, float]] = {}     # col -> (r0, r_ref, lead ohm)
+        self._tc: dict[int, tuple[str, Any, float]] = {}          # col -> (type, junction, vref)
+        self._thermal: dict[int, dict[str, Any]] = {}             # gauge col -> thermal truth
 
+        copts_all = []
         for col, ch in enumerate(setup.channels):
             cpath = f"{path}.channels[{col}]"
             copts = _validated(CHANNEL_OPTIONS, dict(ch.options), f"{cpath}.options")
-            self._setup_channel(col, ch.config, copts, cpath, reference, vref_v)
+            cfg = ch.config
+            ch_gain = cfg.get("gain") or gain
+            ch_ref = cfg.get("reference") or reference
+            ch_vref = cfg.get("vref_v") if cfg.get("vref_v") is not None else vref_v
+            if ch_ref not in ("excitation", "external"):
+                raise DriverConfigError(f"{cpath}.reference",
+                                        f"must be 'excitation' or 'external', got {ch_ref!r}")
+            if ch_ref == "external" and not (isinstance(ch_vref, (int, float)) and ch_vref > 0):
+                raise DriverConfigError(f"{cpath}.vref_v", "an external reference needs vref_v > 0 V")
+            self._setup_channel(col, cfg, copts, cpath, ch_ref, ch_vref, float(ch_gain))
             self._open[col] = ch.name in open_names
+            copts_all.append(copts)
+        self._link_temperatures(copts_all, path)
+        self._temp_cols = sorted(set(self._rtd) | set(self._tc))
         self._any_shunt = bool(self._has_shunt.any())
         self._any_gf2 = bool(np.any(self._gf2 != 0.0))
         self._varying_arm = [bool(np.any(self._B[a] != 0.0)) for a in range(4)]
@@ -495,15 +540,18 @@ class BridgeSimulator:
 
     # -- configuration ---------------------------------------------------------------------
     def _setup_channel(self, col: int, cfg: Mapping[str, Any], copts: Mapping[str, Any],
-                       cpath: str, reference: str, vref_v: Any) -> None:
+                       cpath: str, reference: str, vref_v: Any, gain: float) -> None:
         sensor = cfg.get("sensor", "strain_gauge")
         truth = copts["truth"]
+        if sensor in ("rtd", "thermocouple"):
+            self._setup_temperature(col, cfg, copts, cpath, reference, vref_v, gain)
+            return
         excitation_v = cfg.get("excitation_v")
         if not isinstance(excitation_v, (int, float)) or excitation_v <= 0:
             raise DriverConfigError(f"{cpath}.excitation_v", "required: excitation in V (> 0)")
         true_exc = copts["true_excitation_v"] or float(excitation_v)
         vref = true_exc if reference == "excitation" else float(vref_v)
-        self._code_scale[col] = self.gain * FULL_SCALE_CODES * true_exc / vref
+        self._code_scale[col] = gain * FULL_SCALE_CODES * true_exc / vref
         self._offset[col] = copts["zero_offset_mv_per_v"] * 1e-3
         noise = copts["noise_nv_per_v"]
         self._sigma[col] = (self.options["noise_nv_per_v"] if noise is None else noise) * 1e-9
@@ -584,7 +632,85 @@ class BridgeSimulator:
         gf = copts["true_gauge_factor"]
         gf = float(cfg["gauge_factor"]) if gf is None else gf
         self._x_per_truth[col] = gf * 1e-6                   # truth in microstrain
-        self._gf2[col] = copts["true_gauge_factor2"]
+        gf2 = copts["true_gauge_factor2"]
+        self._gf2[col] = float(cfg.get("gauge_factor_2") or 0.0) if gf2 is None else gf2
+
+    def _setup_temperature(self, col: int, cfg: Mapping[str, Any], copts: Mapping[str, Any],
+                           cpath: str, reference: str, vref_v: Any, gain: float) -> None:
+        """An RTD or thermocouple channel: truth in degC -> converter input (see module doc)."""
+        truth = copts["truth"]
+        sensor = cfg["sensor"]
+        if truth["kind"] == "creep":
+            raise DriverConfigError(f"{cpath}.options.truth.kind",
+                                    "creep is a strain scenario: use it on strain_gauge channels")
+        self._A[:, col] = 1.0                      # a dummy balanced bridge, overwritten later
+        self._code_scale[col] = gain * FULL_SCALE_CODES
+        self._offset[col] = copts["zero_offset_mv_per_v"] * 1e-3
+        noise = copts["noise_nv_per_v"]
+        self._sigma[col] = (self.options["noise_nv_per_v"] if noise is None else noise) * 1e-9
+        if sensor == "rtd":
+            if reference != "excitation":
+                raise DriverConfigError(f"{cpath}.reference", "an RTD is read ratiometrically")
+            element = cfg.get("element")
+            r0 = {"pt100": 100.0, "pt1000": 1000.0}.get(element)
+            if r0 is None:
+                raise DriverConfigError(f"{cpath}.element", f"must be pt100 or pt1000, got {element!r}")
+            r_ref = cfg.get("reference_ohm")
+            if not isinstance(r_ref, (int, float)) or r_ref <= 0:
+                raise DriverConfigError(f"{cpath}.reference_ohm", "required: reference resistor, ohm")
+            lead = copts["true_lead_ohm"]
+            lead = float(cfg.get("lead_ohm") or 0.0) if lead is None else lead
+            n_leads = 2.0 if cfg.get("wiring") == "2-wire" else 0.0
+            self._rtd[col] = (r0, float(r_ref), n_leads * lead)
+        else:
+            if reference != "external":
+                raise DriverConfigError(f"{cpath}.reference", "a thermocouple needs an external "
+                                        "reference (vref_v)")
+            tc_type = str(cfg.get("type", "")).upper()
+            if tc_type not in _temperature.TC_TYPES:
+                raise DriverConfigError(f"{cpath}.type", f"unknown thermocouple type {tc_type!r}")
+            junction: Any = cfg.get("junction_channel")
+            if junction is None:
+                jc = cfg.get("junction_c")
+                if not isinstance(jc, (int, float)):
+                    raise DriverConfigError(f"{cpath}.junction_c", "give junction_channel or "
+                                            "junction_c")
+                junction = float(jc)
+            self._tc[col] = (tc_type, junction, float(vref_v))
+        self.units.append("degC")
+        self._truth_cfg.append(truth)
+
+    def _link_temperatures(self, copts_all: Sequence[Mapping[str, Any]], path: str) -> None:
+        """Resolve junction channels and the temperature_from of gauges to columns."""
+        temps = set(self._rtd) | set(self._tc)
+        cols = {name: c for c, name in enumerate(self.names)}
+        for col, (tc_type, junction, vref) in list(self._tc.items()):
+            if isinstance(junction, str):
+                j = cols.get(junction)
+                if j is None or j not in temps or j == col:
+                    raise DriverConfigError(f"{path}.channels[{col}].junction_channel",
+                                            f"{junction!r} is not another temperature channel")
+                self._tc[col] = (tc_type, j, vref)
+        for col, copts in enumerate(copts_all):
+            src = copts["temperature_from"]
+            poly = copts["thermal_output_microstrain"]
+            alpha = float(copts["gf_alpha_per_c"])
+            if src is None:
+                if poly is not None or alpha != 0.0:
+                    raise DriverConfigError(f"{path}.channels[{col}].options.temperature_from",
+                                            "required with thermal_output_microstrain or "
+                                            "gf_alpha_per_c")
+                continue
+            if not self._is_gauge[col]:
+                raise DriverConfigError(f"{path}.channels[{col}].options.temperature_from",
+                                        "only strain gauges have a thermal output")
+            t = cols.get(src)
+            if t is None or t not in temps:
+                raise DriverConfigError(f"{path}.channels[{col}].options.temperature_from",
+                                        f"{src!r} is not a temperature channel of this device")
+            self._thermal[col] = {"tcol": t, "alpha": alpha,
+                                  "t_ref": float(copts["gf_ref_temp_c"]),
+                                  "poly": None if poly is None else np.asarray(poly, dtype=float)}
 
     def _setup_transducer(self, col: int, cfg: Mapping[str, Any], copts: Mapping[str, Any],
                           cpath: str) -> None:
@@ -757,6 +883,15 @@ class BridgeSimulator:
             e *= e
             e *= self._gf2
             x += e
+        for col, th in self._thermal.items():
+            temp = truth[:, th["tcol"]]
+            x_mech = x[:, col]
+            if th["alpha"]:
+                x_mech = x_mech * (1.0 + th["alpha"] * (temp - th["t_ref"]))
+            if th["poly"] is not None:
+                x_mech = x_mech + self._x_per_truth[col] * np.polynomial.polynomial.polyval(
+                    temp, th["poly"])
+            x[:, col] = x_mech
         for col, cert in self._cert.items():
             x[:, col] = cert.ratio(truth[:, col])
         if x.size and (x.min() < self._x_lo_min or x.max() > self._x_hi_max):
@@ -821,7 +956,9 @@ class BridgeSimulator:
         ratio = self._half(r2, r1)
         ratio = np.subtract(ratio, self._half(r3, r4), out=ratio if ratio.ndim == 2 else None)
         if ratio.shape != (n, m):
-            ratio = np.array(np.broadcast_to(ratio, (n, m)), dtype=np.float64)
+            ratio = np.array(np.broadcast_to(ratio, (n, m)), dtype=np.float64, order="C")
+        if self._temp_cols:
+            self._temperature_inputs(truth, ratio)
         if self._any_offset:
             ratio += self._offset
         if self._noise:
@@ -838,6 +975,18 @@ class BridgeSimulator:
                 common += (start_index + np.arange(n, dtype=np.float64)) * self._drift_per_sample
             ratio += common[:, None]
         return ratio, quality
+
+    def _temperature_inputs(self, truth: np.ndarray, ratio: np.ndarray) -> None:
+        """Converter input (fraction of the reference) of RTD and thermocouple columns."""
+        for col, (r0, r_ref, leads_ohm) in self._rtd.items():
+            t = np.clip(truth[:, col], _temperature.RTD_T_MIN_C, _temperature.RTD_T_MAX_C)
+            ratio[:, col] = (_temperature.rtd_resistance(t, r0) + leads_ohm) / r_ref
+        for col, (tc_type, junction, vref) in self._tc.items():
+            lo, hi = _temperature.tc_range_c(tc_type)
+            t = np.clip(truth[:, col], lo, hi)
+            tj = np.clip(truth[:, junction], lo, hi) if isinstance(junction, int) else junction
+            emf_mv = _temperature.tc_emf_mv(tc_type, t) - _temperature.tc_emf_mv(tc_type, tj)
+            ratio[:, col] = emf_mv * 1e-3 / vref
 
     def _page(self, page: int) -> np.ndarray:
         """(PAGE_SAMPLES, m) noise of one page in V/V (standard normal x sigma), cached.
