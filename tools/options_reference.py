@@ -65,6 +65,17 @@ def main() -> int:
             print(f"{title}:\n\n| key | type / unit | default | meaning |\n|---|---|---|---|")
             print("\n".join(_rows(sec)))
             print()
+        kinds = getattr(sys.modules[cls.__module__], "TRUTH_KINDS", None)
+        if kinds:
+            print("truth scenarios (`options.truth`, times in truth time: sample time x "
+                  "`time_scale`):\n")
+            print("| kind | key | type / unit | default | meaning |\n|---|---|---|---|---|")
+            for kind, sec in kinds.items():
+                for row in _rows(sec):
+                    if row.startswith("| `kind`"):
+                        continue
+                    print(f"| `{kind}` " + row)
+            print()
     return 0
 
 
