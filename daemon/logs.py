@@ -13,7 +13,7 @@ import sys
 import threading
 import time
 
-__all__ = ["setup_logging", "RateLimitFilter"]
+__all__ = ["setup_logging", "RateLimitFilter", "suppressed_total"]
 
 
 class _Formatter(logging.Formatter):
@@ -38,6 +38,8 @@ class RateLimitFilter(logging.Filter):
         self.burst, self.window_s = burst, window_s
         self._seen: dict[tuple[str, str], list[float | int]] = {}
         self._lock = threading.Lock()
+        #: lines held back since start (the events and counters still see every one)
+        self.suppressed_total = 0
 
     def filter(self, record: logging.LogRecord) -> bool:
         key = (record.name, str(record.msg))
@@ -57,6 +59,7 @@ class RateLimitFilter(logging.Filter):
             if slot[1] <= self.burst:
                 return True
             slot[2] = int(slot[2]) + 1
+            self.suppressed_total += 1
             return False
 
 
@@ -72,3 +75,9 @@ def setup_logging(level: str = "info") -> logging.Logger:
         logger.propagate = False
     logger.setLevel(level.upper())
     return logger
+
+
+def suppressed_total() -> int:
+    """Log lines the rate limit held back so far (shown by `straind status`)."""
+    logger = logging.getLogger("straind")
+    return sum(getattr(f, "suppressed_total", 0) for h in logger.handlers for f in h.filters)

@@ -26,8 +26,11 @@ and `-` in the station id become `_`). A new segment begins
   segment: a closed segment is never reopened for writing,
 * when the next block would take the file past `segment_max_mb` (never for an empty segment; the
   cap is approximate: chunk allocation can take a file about one chunk per dataset past it),
+* when a device's sample times would go backwards (its driver re-anchored after the wall clock
+  stepped back): times within one segment always increase,
 * on `Store.new_segment()` (configuration reload, channel set change), after everything queued,
-* after three failed write attempts in a row (the faulty file is given up, see "Write errors").
+* after three failed write attempts in a row, unless the disk is full or read-only (the faulty
+  file is given up, see "Write errors").
 
 A segment is created under `<name>.h5.tmp`, built, switched to SWMR mode, flushed and only then
 given its `.h5` name, so every `*.h5` file is complete. While open, the writer holds a Linux open
@@ -63,7 +66,7 @@ detail S2048 (JSON), part uint32, parts uint32. [5] NaN where unusable.
 
 Root attributes: format_version (int, `straind.FORMAT_VERSION`), straind_version, station_id,
 created_utc (ISO 8601 with microseconds and Z), host (writer host name), start_reason (start,
-time, size, new_segment, write_error), previous_segment (file name of the segment before it in
+time, size, time_step, new_segment, write_error), previous_segment (file name of the segment before it in
 the same run, or ""), segment_end_utc (the time boundary that ends it).
 
 Device attributes: every key of DeviceLayout.attrs, then (winning on a clash) driver,
@@ -92,14 +95,23 @@ tables are stored plain.
 Live readers: the writer extends raw, value, quality, then time_ns, then blocks. Datasets are
 refreshed one by one, so a live reader should take `min(len)` over the datasets of a device.
 
+Durability: with `fsync` (default true) every flush is followed by fsync(2) of the file and every
+new segment name by fsync of the directory, so a power cut, like a kill -9, loses at most about
+one flush interval. An fsync error counts as a write error (the kernel may have dropped the
+pages: the rows since the last good flush are written again, see below).
+
 Write errors: any exception from HDF5 (OSError such as ENOSPC) is counted, reported once per fault
 episode as a `storage_fault` event (and whenever the error text changes), and the unwritten blocks
 are kept in memory (still counted against `queue_mb`, so new blocks are dropped, counted and
 reported once that is full) and retried with back-off (one flush interval, doubling, at most 5 s).
 Datasets are cut back to their last complete row after a failed append, so no file holds a
-partial row. After three failures in a row the segment is closed as far as possible and the next
-attempt opens a new one. The first successful write and flush afterwards raises
-`storage_recovered`.
+partial row. A full or read-only file system (ENOSPC, EDQUOT, EROFS, found in the error's errno
+or in HDF5's message) keeps the open segment: HDF5 keeps its unwritten metadata and the retry
+writes it once space returns, so the file stays whole. After three failures in a row of any
+other kind the segment is closed as far as possible and the next attempt opens a new one; when
+HDF5 cannot close it, its objects are kept (never freed: freeing the objects of a file whose
+close failed crashes the library) and the file is closed at exit or recovered at the next
+start. The first successful write and flush afterwards raises `storage_recovered`.
 
 Crash recovery: a killed writer leaves the superblock's consistency flags set, and plain
 `h5py.File(p, 'r')` refuses such a file. `recover_unclosed(directory)` clears them for files no
@@ -167,6 +179,9 @@ _MAX_APPEND_BYTES = 4 << 20   # rows per coalesced append are capped near this m
 _EVENT_CHUNK_ROWS = 64
 _BLOCKS_CHUNK_ROWS = 256
 _ABANDON_AFTER = 3          # consecutive failed attempts before a faulty segment is given up
+#: errno values of a full or read-only file system: wait for it, never give the file up
+_TRANSIENT_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EROFS})
+_ERRNO_IN_TEXT = re.compile(r"errno = (\d+)")
 _MAX_RETRY_S = 5.0
 _MAX_QUEUED_EVENTS = 100_000
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -343,6 +358,13 @@ def _append_rows(ds: h5py.Dataset, start: int, arr: np.ndarray) -> None:
     ds.id.write(h5s.create_simple(arr.shape), fspace, arr)
 
 
+def _storage_full_or_read_only(exc: BaseException) -> bool:
+    """True for ENOSPC / EDQUOT / EROFS, given as errno or inside HDF5's error text."""
+    if getattr(exc, "errno", None) in _TRANSIENT_ERRNOS:
+        return True
+    return any(int(m) in _TRANSIENT_ERRNOS for m in _ERRNO_IN_TEXT.findall(str(exc)))
+
+
 def _set_rows(ds: h5py.Dataset, rows: int) -> None:
     ds.id.set_extent((rows,) + ds.shape[1:])
 
@@ -490,6 +512,7 @@ class _Piece:
     hi: int
     mem_bytes: int          # share of the block's bytes counted against queue_mb
     last: bool              # holds the block's last row (the block counts as written after it)
+    written: bool = False   # appended once already (a rewrite after a failed flush counts nothing)
 
     @property
     def n(self) -> int:
@@ -531,6 +554,7 @@ class _Segment:
     end_ns: int
     event_rows: int = 0
     dirty: bool = False
+    last_t_ns: dict[str, int] = field(default_factory=dict)   # last sample time per device
 
 
 @dataclass
@@ -579,6 +603,7 @@ class Store:
         self.compression = str(storage.get("compression", "none"))
         self.value_dtype = np.dtype(str(storage.get("value_dtype", "float64")))
         self.queue_limit_bytes = int(float(storage.get("queue_mb", 256)) * 1e6)
+        self.fsync = bool(storage.get("fsync", True))
         if self.compression not in ("none", "lzf", "gzip"):
             raise ValueError("storage.compression must be none, lzf or gzip")
         if self.value_dtype not in (np.dtype("float64"), np.dtype("float32")):
@@ -620,6 +645,13 @@ class Store:
         self._next_reason = "start"
         self._previous_name = ""
         self._fail_streak = 0
+        self._unclosable: list[_Segment] = []
+        # rows appended since the last successful flush, kept until the next one succeeds
+        self._since_flush: dict[str, list[_Piece]] = {}
+        self._events_since_flush: list[Event] = []
+        self._flushed_at: dict[str, tuple[int, int]] = {}   # device -> (rows, block rows)
+        self._flushed_event_rows = 0
+        self._rewind_needed = False
         self._fault_since = 0.0
         self._fault_errors = 0
         self._retry_at = 0.0
@@ -733,7 +765,7 @@ class Store:
         (queued plus taken but not yet written), queue_limit_bytes, queue_events,
         dropped_blocks, dropped_rows, dropped_events, lost_blocks (unwritable at stop),
         events_written, last_flush_wall_ns, flush_count, write_errors, last_error, faulted,
-        running.
+        unclosable_segments (files HDF5 could not close after a storage failure), running.
         """
         with self._lock:
             c = self._c
@@ -757,6 +789,7 @@ class Store:
                 "write_errors": c.write_errors,
                 "last_error": c.last_error,
                 "faulted": c.faulted,
+                "unclosable_segments": len(self._unclosable),
                 "running": bool(self._thread is not None and self._thread.is_alive()),
             }
 
@@ -880,6 +913,11 @@ class Store:
 
     def _finish(self) -> None:
         """After stop: give up what could not be written, close the segment."""
+        if self._rewind_needed and self._seg is not None:
+            try:   # no row after the last good flush stays in the file unless written again
+                self._rewind()
+            except Exception:  # noqa: BLE001
+                log.error("could not cut %s back to its last flush", self._seg.path)
         lost_pieces = [p for ps in self._pending.values() for p in ps]
         lost_pieces += [it[1] for it in self._inbox if it[0] == "b"]
         lost = sum(1 for p in lost_pieces if p.last)
@@ -942,6 +980,14 @@ class Store:
             self._open_segment(piece.t0_ns)
         seg = self._seg
         assert seg is not None
+        last = seg.last_t_ns.get(piece.block.device)
+        if last is not None and piece.t0_ns <= last:
+            # the device's times went back (re-anchored after the wall clock stepped back):
+            # times within a segment only increase, so this piece begins a new segment
+            self._write_pending()
+            self._close_segment()
+            self._next_reason = "time_step"
+            return False
         if piece.t_last_ns() >= seg.end_ns:
             period = piece.block.period_ns
             k = 0 if piece.t0_ns >= seg.end_ns else -((piece.t0_ns - seg.end_ns) // period)
@@ -970,9 +1016,13 @@ class Store:
             file_bytes = piece.n * self._seg.devices[piece.block.device].row_bytes
         self._pending.setdefault(piece.block.device, []).append(piece)
         self._pending_file_bytes += file_bytes
+        assert self._seg is not None
+        self._seg.last_t_ns[piece.block.device] = piece.t_last_ns()
 
     def _write_pending(self) -> None:
         """Append the pending pieces (one append per dataset per device) and events."""
+        if self._rewind_needed and self._seg is not None:
+            self._rewind()
         if not self._pending and not self._pending_events:
             return
         if self._seg is None:
@@ -1005,7 +1055,11 @@ class Store:
                 raise
             seg.event_rows += len(rows)
             seg.dirty = True
-            n_ev = len(self._pending_events)
+            rewritten = {id(ev) for ev in self._events_since_flush}
+            n_ev = sum(1 for ev in self._pending_events if id(ev) not in rewritten)
+            self._events_since_flush = list(self._pending_events) if not rewritten else \
+                self._events_since_flush + [ev for ev in self._pending_events
+                                            if id(ev) not in rewritten]
             self._pending_events.clear()
             with self._lock:
                 self._c.events_written += n_ev
@@ -1052,22 +1106,29 @@ class Store:
         ds.block_rows += len(pieces)
         seg.dirty = True
         name = layout.name
+        new = [p for p in pieces if not p.written]
+        for p in new:
+            p.written = True
+        self._since_flush.setdefault(name, []).extend(pieces)
         with self._lock:
             c = self._c
             c.rows[name] = ds.rows
-            c.rows_total[name] = c.rows_total.get(name, 0) + n
-            c.queued_bytes = max(0, c.queued_bytes - sum(p.mem_bytes for p in pieces))
-            c.queued_blocks = max(0, c.queued_blocks - sum(1 for p in pieces if p.last))
+            c.rows_total[name] = c.rows_total.get(name, 0) + sum(p.n for p in new)
+            c.queued_bytes = max(0, c.queued_bytes - sum(p.mem_bytes for p in new))
+            c.queued_blocks = max(0, c.queued_blocks - sum(1 for p in new if p.last))
 
     def _flush(self) -> None:
         seg = self._seg
         if seg is not None and seg.dirty:
             try:
                 seg.f.flush()
+                if self.fsync and seg.lock_fd is not None:
+                    os.fsync(seg.lock_fd)       # on the medium, not only in the page cache
             except Exception as exc:  # noqa: BLE001
                 self._fault(exc, "flush")
                 return
             seg.dirty = False
+            self._flushed(seg)
             with self._lock:
                 self._c.flush_count += 1
                 self._c.last_flush_wall_ns = self._wall_ns()
@@ -1094,13 +1155,18 @@ class Store:
         """A failed write: keep the data, retry with back-off, give up a failing segment."""
         first = not self._c.faulted
         self._fail_streak += 1
+        if self._seg is not None:
+            # chunks HDF5 could not write may be gone from its cache: everything since the
+            # last successful flush is written again before the next flush
+            self._rewind_needed = True
         self._fault_errors += 1
         if first:
             self._fault_since = time.monotonic()
         with self._lock:
             self._c.faulted = True
         self._count_error(exc, where, report=first)
-        if self._fail_streak >= _ABANDON_AFTER and self._seg is not None:
+        if (self._fail_streak >= _ABANDON_AFTER and self._seg is not None
+                and not _storage_full_or_read_only(exc)):
             self._abandon_segment()
         delay = min(self.flush_interval_s * 2 ** (self._fail_streak - 1), _MAX_RETRY_S)
         self._retry_at = time.monotonic() + max(delay, 0.01)
@@ -1185,10 +1251,22 @@ class Store:
                 if final.exists():          # file system without hard links
                     continue
                 os.rename(tmp, final)
+                self._sync_directory()
                 return final
             tmp.unlink()
+            self._sync_directory()
             return final
         raise FileExistsError(f"no free segment name for {stem}")
+
+    def _sync_directory(self) -> None:
+        """Make the new name durable: a power cut must not take a published segment away."""
+        if not self.fsync:
+            return
+        fd = os.open(self.directory, os.O_RDONLY | os.O_CLOEXEC)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
 
     def _build(self, f: h5py.File, layouts: list[DeviceLayout], chunk: Mapping[str, int],
                first_ns: int, end_ns: int) -> dict[str, _DeviceSets]:
@@ -1255,6 +1333,8 @@ class Store:
         assert seg is not None
         try:
             seg.f.flush()
+            if self.fsync and seg.lock_fd is not None:
+                os.fsync(seg.lock_fd)
         except Exception as exc:
             exc._store_where = "flush before close"  # type: ignore[attr-defined]
             raise
@@ -1263,9 +1343,11 @@ class Store:
                 self._c.flush_count += 1
                 self._c.last_flush_wall_ns = self._wall_ns()
             self._c.flushed_rows = {n: d.rows for n, d in seg.devices.items()}
+        self._flushed(seg)
         try:
             seg.f.close()
         except Exception as exc:  # noqa: BLE001 - data are flushed; report and go on
+            self._unclosable.append(seg)     # never free these objects (see "Write errors")
             self._count_error(exc, "close", report=True)
         finally:
             self._drop_segment()
@@ -1280,8 +1362,53 @@ class Store:
             seg.f.close()
         except Exception:  # noqa: BLE001
             log.debug("close of abandoned segment failed", exc_info=True)
+            self._unclosable.append(seg)     # never free these objects (see "Write errors")
+        self._carry_unflushed()
         self._drop_segment()
         self._next_reason = "write_error"
+
+    def _flushed(self, seg: _Segment) -> None:
+        """A flush succeeded: what is in the file now is on disk; forget the rows kept."""
+        self._flushed_at = {n: (d.rows, d.block_rows) for n, d in seg.devices.items()}
+        self._flushed_event_rows = seg.event_rows
+        self._since_flush = {}
+        self._events_since_flush = []
+        self._rewind_needed = False
+
+    def _rewind(self) -> None:
+        """Cut the datasets back to the last successful flush and queue the rows written since
+        for writing again (in front of what is pending), so no lost chunk leaves a hole."""
+        seg = self._seg
+        assert seg is not None
+        for name, ds in seg.devices.items():
+            rows0, blocks0 = self._flushed_at.get(name, (0, 0))
+            for dset in (ds.raw, ds.value, ds.quality, ds.time_ns):
+                _set_rows(dset, rows0)
+            _set_rows(ds.blocks, blocks0)
+        _set_rows(seg.events, self._flushed_event_rows)
+        # the file is consistent again: move the kept rows back to the pending appends
+        for name, ds in seg.devices.items():
+            ds.rows, ds.block_rows = self._flushed_at.get(name, (0, 0))
+            kept = self._since_flush.pop(name, [])
+            if kept:
+                self._pending[name] = kept + self._pending.get(name, [])
+            with self._lock:
+                self._c.rows[name] = ds.rows
+        seg.event_rows = self._flushed_event_rows
+        self._pending_events = self._events_since_flush + self._pending_events
+        self._rewind_needed = False
+        log.info("rewriting the rows since the last flush of %s", seg.path.name)
+
+    def _carry_unflushed(self) -> None:
+        """The segment is given up: its unflushed rows go to the next segment."""
+        for name, kept in self._since_flush.items():
+            self._pending[name] = kept + self._pending.get(name, [])
+        self._pending_events = self._events_since_flush + self._pending_events
+        self._since_flush = {}
+        self._events_since_flush = []
+        self._flushed_at = {}
+        self._flushed_event_rows = 0
+        self._rewind_needed = False
 
     def _drop_segment(self) -> None:
         seg = self._seg
@@ -1290,6 +1417,11 @@ class Store:
         if seg.lock_fd is not None:
             os.close(seg.lock_fd)
         self._seg = None
+        self._since_flush = {}
+        self._events_since_flush = []
+        self._flushed_at = {}
+        self._flushed_event_rows = 0
+        self._rewind_needed = False
         with self._lock:
             self._c.segment = None
             self._c.rows = {}

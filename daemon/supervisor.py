@@ -102,7 +102,8 @@ class DeviceRunner(threading.Thread):
                  sinks: Sequence[Sink], emit: Callable[[Event], None],
                  on_zero: Callable[["DeviceRunner", int, float, int, str], dict] | None = None,
                  wall_clock_ns: Callable[[], int] = time.time_ns,
-                 heartbeat: Callable[[], None] | None = None):
+                 heartbeat: Callable[[], None] | None = None,
+                 clock_synced: Callable[[], bool] | None = None):
         super().__init__(name=f"straind-dev-{device['name']}", daemon=False)
         self.device = device
         self.name_ = device["name"]
@@ -112,6 +113,9 @@ class DeviceRunner(threading.Thread):
         self.emit = emit
         self.on_zero = on_zero
         self.heartbeat = heartbeat
+        #: asked whenever the timebase anchors; False flags the run's samples CLOCK_UNSYNCED
+        self.clock_synced = clock_synced
+        self.anchor_unsynced = False
         self.setup = device_setup(device)
         self.timebase = Timebase(self.setup.period_ns, wall_clock_ns)
         self.stop_event = threading.Event()
@@ -171,6 +175,11 @@ class DeviceRunner(threading.Thread):
     def stop(self) -> None:
         self.stop_event.set()
 
+    def note_gap(self, reason: str, since_ns: int | None) -> None:
+        """Before start: this runner continues a device that stopped (restart, reload), so its
+        first block is flagged AFTER_GAP and a gap event says why."""
+        self._pending_gap = {"reason": reason, "since_ns": since_ns}
+
     # -- the loop ----------------------------------------------------------------------------
     def run(self) -> None:
         backoff = Backoff()
@@ -207,12 +216,25 @@ class DeviceRunner(threading.Thread):
                 log.exception("device %s: unexpected driver error", self.name_)
             self._close(drv)
             self._fail_commands("driver is reconnecting")
-            if self.stop_event.wait(backoff.wait_s()):
+            if self._wait_beating(backoff.wait_s()):
                 break
         self._close(self.driver)
         self._fail_commands("device stopped")
         if self.state != "finished":
             self.state = "stopped"
+
+    def _wait_beating(self, seconds: float) -> bool:
+        """Wait up to `seconds` for stop (True when asked to stop), beating the heartbeat at
+        least twice a second meanwhile: a loop in its backoff is alive, not stuck."""
+        end = time.monotonic() + seconds
+        while True:
+            if self.heartbeat is not None:
+                self.heartbeat()
+            left = end - time.monotonic()
+            if left <= 0:
+                return self.stop_event.is_set()
+            if self.stop_event.wait(min(left, 0.5)):
+                return True
 
     def _close(self, drv: Driver | None) -> None:
         if drv is None:
@@ -260,7 +282,13 @@ class DeviceRunner(threading.Thread):
             done.set()
 
     def _handle(self, block: Block) -> None:
-        block = self.timebase.stamp(block)
+        tb = self.timebase
+        anchoring = tb.anchor_ns is None or block.start_index < tb.anchor_index
+        block = tb.stamp(block)
+        if anchoring and self.clock_synced is not None:
+            self.anchor_unsynced = not self.clock_synced()
+        if self.anchor_unsynced:
+            block = block.with_quality(block.quality | np.uint8(Quality.CLOCK_UNSYNCED))
         if self._pending_gap is not None:
             gap = self._pending_gap
             self._pending_gap = None
@@ -361,6 +389,7 @@ class DeviceRunner(threading.Thread):
             "measured_rate_hz": round(self.rate_hz(), 3), "blocks": self.blocks,
             "samples": self.samples, "reconnects": self.reconnects, "last_error": self.last_error,
             "last_time_ns": self.last_time_ns, "last_values": values,
+            "clock_unsynced_anchor": self.anchor_unsynced,
             "units": dict(zip(self.chain.names, self.chain.units)),
             "driver_counters": dict(drv.counters) if drv is not None else {},
         }

@@ -538,14 +538,19 @@ def test_rejects_blocks_that_do_not_fit_the_layout(tmp_path, new_store):
 
 
 class FailNext:
-    """Make the next `left` appends to `quality` datasets raise ENOSPC, as a full disk would.
+    """Make the next `left` appends to `quality` datasets raise an OSError (ENOSPC as a full disk
+    would, EIO as a failing disk would).
 
     raw and value of the same append have been extended and written by then, so the store must
     cut them back.
     """
 
-    def __init__(self, real):
+    MESSAGES = {errno.ENOSPC: "No space left on device (injected)",
+                errno.EIO: "Input/output error (injected)"}
+
+    def __init__(self, real, err=errno.ENOSPC):
         self.real = real
+        self.err = err
         self.left = 0
         self.raised = 0
 
@@ -553,14 +558,17 @@ class FailNext:
         if self.left > 0 and ds.name.endswith("/quality"):
             self.left -= 1
             self.raised += 1
-            raise OSError(errno.ENOSPC, "No space left on device (injected)")
+            raise OSError(self.err, self.MESSAGES[self.err])
         return self.real(ds, start, arr)
 
 
-@pytest.mark.parametrize("failures, files", [(2, 1), (3, 2)])
-def test_write_errors_keep_the_thread_and_the_data(tmp_path, monkeypatch, failures, files,
+# a full disk never gives the file up (it waits for space); three failures in a row of another
+# kind (EIO) give the segment up and continue in a new file
+@pytest.mark.parametrize("failures, files, err", [(2, 1, errno.ENOSPC), (3, 1, errno.ENOSPC),
+                                                  (3, 2, errno.EIO)])
+def test_write_errors_keep_the_thread_and_the_data(tmp_path, monkeypatch, failures, files, err,
                                                    new_store):
-    fail = FailNext(store_mod._append_rows)
+    fail = FailNext(store_mod._append_rows, err)
     monkeypatch.setattr(store_mod, "_append_rows", fail)
     lay = make_layout("b", n_raw=2)
     s = Stream(lay, utc_ns(2024, 4, 4, 4), 100)
@@ -578,9 +586,10 @@ def test_write_errors_keep_the_thread_and_the_data(tmp_path, monkeypatch, failur
     wait_for(lambda: not st.status()["faulted"] and st.status()["rows_total"]["b"] == 1000,
              what="recovery")
     status = st.status()
-    assert status["write_errors"] == failures and "No space left" in status["last_error"]
+    assert status["write_errors"] == failures
+    assert FailNext.MESSAGES[err].split(" (")[0] in status["last_error"]
     faults = [e for e in seen if e.kind == "storage_fault"]
-    assert len(faults) == 1 and faults[0].detail["errno"] == errno.ENOSPC
+    assert len(faults) == 1 and faults[0].detail["errno"] == err
     assert seen[-1].kind == "storage_recovered" and seen[-1].detail["write_errors"] == failures
     for _ in range(5):
         assert st.submit(s.block())
