@@ -20,6 +20,14 @@ QoS 1 data (values, full-rate batches and events) are appended to the disk outbo
 a record leaves the outbox only when the broker's PUBACK for it arrives. Every message carries a
 per-topic sequence number (``seq``) that continues across restarts, so a subscriber drops the
 duplicates a replay may bring by ignoring any ``seq`` it has already seen on that topic.
+
+When the outbox cannot write (disk full, read-only file system) the feed goes on: new QoS 1
+messages get their sequence numbers as usual and wait in a memory queue bounded in bytes (a
+quarter of ``outbox.max_mb``, beyond it the oldest are dropped, counted and announced), and
+are published from there after whatever the outbox still holds. The outbox is tried again
+every `Feed.outbox_retry_s` once its file system has room again; once it writes, the memory queue is appended to it in order and
+everything goes through it again. The state shows in `Feed.status()` (``outbox.state``), and
+an ``outbox_unwritable`` / ``outbox_recovered`` event marks each change.
 """
 
 from __future__ import annotations
@@ -490,6 +498,21 @@ class _Client(mqtt.Client):
 
 
 @dataclass
+class _MemMsg:
+    """A QoS 1 message kept in memory while the outbox cannot write."""
+
+    topic: str
+    payload: bytes
+    retain: bool
+    seq: int
+    time_ns: int
+
+    @property
+    def size(self) -> int:
+        return len(self.payload) + len(self.topic) + 64
+
+
+@dataclass
 class _DeviceState:
     name: str
     layout: DeviceLayout | None
@@ -578,7 +601,7 @@ class Feed:
         self._outage_logged: set[str] = set()
         self._outage_start_mono: float | None = None
         self._ever_connected = False
-        self._inflight: dict[int, int] = {}      # mid -> outbox record
+        self._inflight: dict[int, Any] = {}      # mid -> outbox record number, or a _MemMsg
         self._counts = collections.Counter()
         self._next_status = 0.0
         self._provider_failed = False
@@ -588,6 +611,21 @@ class Feed:
         self._last_drop_log = -1e9
         self._rejected_logged: set[str] = set()
         self._started_ns = 0
+        #: seconds between attempts to write to an outbox that failed
+        self.outbox_retry_s = 1.0
+        #: the outbox is tried again only with this much free space (plus the memory queue's
+        #: bytes) on its file system, so that a disk with a few bytes free does not flap
+        self.outbox_resume_free_bytes = 64 << 10
+        self._ob_error: str | None = None        # set while the outbox cannot write
+        self._ob_error_since_ns = 0
+        self._ob_retry_at = 0.0
+        self._mem: collections.deque[_MemMsg] = collections.deque()   # not yet handed out
+        self._mem_bytes = 0
+        self._mem_inflight = 0
+        self.memory_max_bytes = 0                # set at start: a quarter of outbox.max_mb
+        self._mem_kept = 0                       # messages kept in memory in this episode
+        self._mem_drops_unannounced = 0
+        self._last_mem_drop_announce = 0.0
 
         self._password: str | None = None
         if self.enabled:
@@ -671,6 +709,7 @@ class Feed:
             path = self._state_dir_default()
         self._outbox = Outbox(path, max_bytes=int(ob["max_mb"] * (1 << 20)),
                               sync_interval_s=ob["sync_interval_s"], log=self.log)
+        self.memory_max_bytes = max(64 << 10, self._outbox.max_bytes // 4)
         if self._outbox.depth:
             self.log.info("MQTT outbox %s holds %d unsent message(s) from before; they go first",
                           path, self._outbox.depth)
@@ -790,6 +829,14 @@ class Feed:
     def status(self) -> dict:
         """Broker state, outbox depth/bytes, oldest unsent age, drops and published counts."""
         ob = self._outbox.stats() if self._outbox is not None else None
+        if ob is not None:
+            ob["state"] = "unwritable" if self._ob_error else "ok"
+            ob["error"] = self._ob_error
+            ob["unwritable_since"] = iso_utc(self._ob_error_since_ns) if self._ob_error else None
+            ob["memory"] = {"depth": len(self._mem) + self._mem_inflight,
+                            "unsent": len(self._mem), "bytes": self._mem_bytes,
+                            "max_bytes": self.memory_max_bytes,
+                            "dropped": self._counts["dropped_memory"]}
         c = self._counts
         return {
             "enabled": self.enabled,
@@ -804,6 +851,7 @@ class Feed:
             "queue_max": self.cfg["queue_blocks"],
             "dropped": {"queue_full": c["dropped_queue"],
                         "outbox_full": ob["dropped"] if ob else 0,
+                        "memory_full": c["dropped_memory"],
                         "qos0_offline": c["dropped_qos0"], "rejected": c["rejected"],
                         "untimed": c["untimed_blocks"]},
             "published": {"values": c["values"], "full_rate": c["full_rate"],
@@ -869,6 +917,8 @@ class Feed:
         self._handle_acks()
         now = time.monotonic()
         self._timers(now)
+        if self._ob_error and now >= self._ob_retry_at:
+            self._try_outbox()
         self._announce_drops()
         self._outbox.flush()
         self._pump()
@@ -1016,7 +1066,10 @@ class Feed:
                 self._log_once_rejected(reason)
             else:
                 self._counts["delivered"] += 1
-            self._outbox.ack(rec)
+            if isinstance(rec, _MemMsg):
+                self._mem_inflight -= 1
+            else:
+                self._outbox.ack(rec)
 
     def _log_once_rejected(self, reason: str) -> None:
         if reason not in self._rejected_logged:
@@ -1032,7 +1085,23 @@ class Feed:
         while len(self._inflight) < limit:
             rec = self._outbox.next_unsent()
             if rec is None:
-                return
+                if not self._mem:
+                    return
+                # the outbox holds only older messages than memory: memory comes after it
+                m = self._mem.popleft()
+                self._mem_bytes -= m.size
+                try:
+                    info = client.publish(m.topic, m.payload, qos=1, retain=m.retain)
+                except ValueError as exc:
+                    self.log.error("MQTT message on %s cannot be sent (%s); dropped", m.topic,
+                                   exc)
+                    self._counts["rejected"] += 1
+                    continue
+                self._inflight[info.mid] = m
+                self._mem_inflight += 1
+                if info.rc == MQTTErrorCode.MQTT_ERR_NO_CONN:
+                    return
+                continue
             try:
                 info = client.publish(rec.topic, rec.payload, qos=rec.qos, retain=rec.retain)
             except ValueError as exc:   # payload or topic paho refuses: can never be sent
@@ -1059,6 +1128,14 @@ class Feed:
                              first_record=drop.first_rec, last_record=drop.last_rec,
                              total_dropped=self._outbox.dropped,
                              max_mb=self.cfg["outbox"]["max_mb"])
+        if self._mem_drops_unannounced and now - self._last_mem_drop_announce > 5.0:
+            n, self._mem_drops_unannounced = self._mem_drops_unannounced, 0
+            self._last_mem_drop_announce = now
+            self.log.warning("MQTT outbox unwritable and memory queue full (%d bytes): %d "
+                             "oldest message(s) dropped", self.memory_max_bytes, n)
+            self._feed_event("feed_drop", reason="outbox unwritable, memory queue full",
+                             dropped=n, total_dropped=self._counts["dropped_memory"],
+                             memory_max_bytes=self.memory_max_bytes)
         if self._queue_drops_unannounced and now - self._last_queue_drop_announce > 5.0:
             n, self._queue_drops_unannounced = self._queue_drops_unannounced, 0
             self._last_queue_drop_announce = now
@@ -1079,8 +1156,83 @@ class Feed:
     def _emit_event(self, event: Event) -> None:
         topic = self.topics.events
         doc = {"station": self.station_id, "time": iso_utc(event.time_ns), **event.as_dict()}
-        self._outbox.append(topic, lambda seq: _dumps({"seq": seq, **doc}), qos=1)
+        self._store(topic, lambda seq: _dumps({"seq": seq, **doc}), False)
         self._counts["events"] += 1
+
+    # ------------------------------------------------------------- outbox or memory fallback
+    def _store(self, topic: str, make: Callable[[int], bytes], retain: bool) -> None:
+        """Queue a QoS 1 message: in the outbox, or in memory while the outbox cannot write."""
+        if self._ob_error and not self._mem and time.monotonic() >= self._ob_retry_at:
+            # retry with this very message, so that "recovered" means records are taken
+            if self._try_outbox((topic, make, retain)):
+                return
+        if not self._ob_error:
+            try:
+                self._outbox.append(topic, make, qos=1, retain=retain)
+                return
+            except OSError as exc:
+                self._outbox_failed(exc)
+        self._keep_in_memory(topic, make, retain)
+
+    def _keep_in_memory(self, topic: str, make: Callable[[int], bytes], retain: bool) -> None:
+        seq = self._outbox.take_seq(topic)
+        msg = _MemMsg(topic, bytes(make(seq)), bool(retain), seq, time.time_ns())
+        self._mem.append(msg)
+        self._mem_bytes += msg.size
+        self._mem_kept += 1
+        while self._mem_bytes > self.memory_max_bytes and len(self._mem) > 1:
+            old = self._mem.popleft()
+            self._mem_bytes -= old.size
+            self._counts["dropped_memory"] += 1
+            self._mem_drops_unannounced += 1
+
+    def _outbox_failed(self, exc: OSError) -> None:
+        """The outbox did not take a message: switch to the memory queue, announce once."""
+        self._ob_retry_at = time.monotonic() + self.outbox_retry_s
+        if self._ob_error:
+            return
+        reason = getattr(exc, "strerror", None) or str(exc)
+        self._ob_error = f"{type(exc).__name__}: {reason}"
+        self._ob_error_since_ns = time.time_ns()
+        self._mem_kept = 0
+        self.log.error("MQTT outbox %s cannot write (%s); QoS 1 messages are kept in memory "
+                       "(at most %d bytes) and published from there until it can",
+                       self._outbox.path, reason, self.memory_max_bytes)
+        self._feed_event("outbox_unwritable", path=self._outbox.path, error=reason,
+                         errno=getattr(exc, "errno", None),
+                         memory_max_bytes=self.memory_max_bytes)
+
+    def _try_outbox(self, new: tuple[str, Callable[[int], bytes], bool] | None = None) -> bool:
+        """Try the failed outbox again: persist its state, move the memory queue into it in
+        order, then store `new`. True when it took everything (the feed uses it again)."""
+        self._ob_retry_at = time.monotonic() + self.outbox_retry_s
+        ob = self._outbox
+        try:
+            free = shutil.disk_usage(ob.path).free
+        except OSError:
+            free = None
+        if free is not None and free < self.outbox_resume_free_bytes + self._mem_bytes:
+            return False
+        try:
+            ob.check_writable()
+            while self._mem:
+                m = self._mem[0]
+                ob.append(m.topic, m.payload, qos=1, retain=m.retain, seq=m.seq,
+                          time_ns=m.time_ns)
+                self._mem.popleft()
+                self._mem_bytes -= m.size
+            if new is not None:
+                ob.append(new[0], new[1], qos=1, retain=new[2])
+        except OSError:
+            return False
+        error, self._ob_error = self._ob_error, None
+        lasted_s = (time.time_ns() - self._ob_error_since_ns) / 1e9
+        self.log.warning("MQTT outbox %s writes again after %.1f s; %d message(s) were kept "
+                         "in memory meanwhile", ob.path, lasted_s, self._mem_kept)
+        self._feed_event("outbox_recovered", path=ob.path, previous_error=error,
+                         unwritable_s=round(lasted_s, 3), kept_in_memory=self._mem_kept,
+                         dropped=self._counts["dropped_memory"])
+        return True
 
     def _emit_values(self, st: _DeviceState) -> None:
         acc, st.acc = st.acc, None
@@ -1118,7 +1270,7 @@ class Feed:
 
     def _send_data(self, topic: str, make: Callable[[int], bytes], qos: int, retain: bool) -> None:
         if qos >= 1:
-            self._outbox.append(topic, make, qos=1, retain=retain)
+            self._store(topic, make, retain)
             return
         seq = self._outbox.allocate_seq(topic)
         if not self._connected:
@@ -1244,7 +1396,8 @@ class Feed:
             self._announce_drops()
             self._outbox.flush()
             reserve = 0.5
-            while self._connected and (self._outbox.depth > 0) and \
+            while self._connected and (self._outbox.depth > 0 or self._mem
+                                       or self._mem_inflight) and \
                     time.monotonic() < self._stop_deadline - reserve:
                 self._handle_net()
                 self._handle_acks()
@@ -1260,6 +1413,7 @@ class Feed:
                 except (RuntimeError, ValueError):
                     pass
                 self._handle_acks()
+            self._spill_memory()
             left = self._outbox.depth
             if left:
                 self.log.info("MQTT feed stopped with %d message(s) in the outbox %s; they are "
@@ -1275,6 +1429,28 @@ class Feed:
             self._connected = False
             self._outbox.close()
             self._set_state("stopped")
+
+    def _spill_memory(self) -> None:
+        """At shutdown: messages still in memory (unacknowledged) go to the outbox if it takes
+        them now, so the next start sends them; otherwise they are lost, logged."""
+        pending = [m for m in self._inflight.values() if isinstance(m, _MemMsg)] + list(self._mem)
+        if not pending:
+            return
+        self._mem = collections.deque(pending)
+        self._mem_bytes = sum(m.size for m in pending)
+        if self._ob_error is None or self._try_outbox():
+            if self._mem:   # the outbox worked all along: plain appends
+                try:
+                    while self._mem:
+                        m = self._mem[0]
+                        self._outbox.append(m.topic, m.payload, qos=1, retain=m.retain,
+                                            seq=m.seq, time_ns=m.time_ns)
+                        self._mem.popleft()
+                except OSError:
+                    pass
+        if self._mem:
+            self.log.error("MQTT feed stopped with %d message(s) only in memory (outbox %s "
+                           "unwritable): they are lost", len(self._mem), self._outbox.path)
 
     # ------------------------------------------------------------------------------ commands
     def _command_loop(self) -> None:

@@ -5,15 +5,19 @@ acknowledged it, so broker outages, network loss and restarts of the service (SI
 lose nothing that reached the log. Design, chosen for speed:
 
 * Records go to segment files ``<first record number, 16 hex digits>.seg`` in one directory.
-  Each record is length-prefixed and CRC-checked (layout below); appends are plain buffered
-  writes handed to the OS once per feed-loop pass (`flush`), so a killed process loses nothing
-  that was flushed; `sync` fsyncs the open segment and the state file on a timer (batched, never
+  Each record is length-prefixed and CRC-checked (layout below); each append is one unbuffered
+  write to the OS, so a killed process loses nothing that was appended; `sync` fsyncs the open segment and the state file on a timer (batched, never
   per message), which bounds what a power loss can take.
 * ``state.json`` (written atomically: temp file, fsync, rename) holds the acknowledged position
   and the per-stream sequence counters. On open every segment is scanned: a torn tail (a write
   cut short by a kill) or a corrupted record fails its CRC and is skipped, the rest is kept, and
   the sequence counters are taken past anything found in the log, so sequence numbers never
   repeat across restarts.
+* A full or read-only file system makes `append` raise OSError and leaves the log as it was:
+  a record written only in part is cut off again (or, if even that fails, marked as a skipped
+  range, which the scan at open skips too), no counter moves, and appends work again as soon
+  as the disk takes data. A failed state write is logged, kept in `write_error` and retried
+  by the next sync; `allocate_seq` goes on handing out numbers meanwhile.
 * The log is bounded in bytes: when it grows past ``max_bytes`` the oldest whole segment is
   dropped; the records lost are counted and reported through `take_drops` so the feed can
   announce them.
@@ -40,6 +44,7 @@ read from others.
 
 from __future__ import annotations
 
+import errno
 import json
 import logging
 import os
@@ -162,6 +167,8 @@ class Outbox:
         self._reserved: dict[str, int] = {}     # stream -> reserved (exclusive) for unlogged seqs
         self.dropped = 0                        # unacknowledged records discarded (size bound)
         self.corrupt = 0                        # damaged regions skipped at open
+        #: last failed state write ("OSError: ..."), None once a write succeeds
+        self.write_error: str | None = None
         self._drops: list[OutboxDrop] = []
         self._unacked = 0
         self._bytes = 0
@@ -183,7 +190,6 @@ class Outbox:
         # writer on the last segment (created lazily on the first append)
         self._wfile = None
         self._wseg: _Segment | None = None
-        self._wbuf_bytes = 0
         # reader cursor: segment index and byte offset of the next record to hand out
         self._rseg_i = 0
         self._roff = 0
@@ -332,11 +338,14 @@ class Outbox:
     # ------------------------------------------------------------------------------- writing
     def append(self, topic: str, payload: bytes | Callable[[int], bytes], qos: int = 1,
                retain: bool = False, stream: str | None = None,
-               time_ns: int | None = None) -> tuple[int, int]:
+               time_ns: int | None = None, seq: int | None = None) -> tuple[int, int]:
         """Store one message; returns (record number, sequence number of its stream).
 
         `payload` may be a callable taking the sequence number, so the number can be written
         into the message itself. `stream` names the sequence counter (default: the topic).
+        `seq`: a number handed out before (`take_seq`, a message first kept in memory); the
+        counter is never moved back. Raises OSError (disk full, read-only) with the log and
+        the counters unchanged.
         """
         with self._lock:
             self._check_open()
@@ -344,7 +353,9 @@ class Outbox:
             if stream != topic:
                 raise ValueError("a logged stream is its topic (the counter is rebuilt from "
                                  "the topics in the log)")
-            seq = self._seq.get(stream, 0)
+            if seq is None:
+                seq = self._seq.get(stream, 0)
+            seq = int(seq)
             body = payload(seq) if callable(payload) else payload
             topic_b = topic.encode("utf-8")
             if len(topic_b) > 0xFFFF:
@@ -355,6 +366,7 @@ class Outbox:
             head = _pack_header(rec, seq, t_ns, topic_b, body, qos, retain)
             size = len(head) + len(body)
             seg = self._writer(size)
+            self._write_record(seg, head + body)
             if self.cache_bytes:
                 self._cache[(seg.path, seg.size)] = (
                     OutboxRecord(rec, seq, t_ns, topic, body, qos, bool(retain)), size)
@@ -362,9 +374,6 @@ class Outbox:
                 while self._cache_bytes > self.cache_bytes and self._cache:
                     _, old_size = self._cache.pop(next(iter(self._cache)))
                     self._cache_bytes -= old_size
-            self._wfile.write(head)
-            self._wfile.write(body)
-            self._wbuf_bytes += size
             if seg.count == 0:
                 seg.first_time_ns = t_ns
             seg.size += size
@@ -372,13 +381,66 @@ class Outbox:
             seg.count += 1
             self._bytes += size
             self._next_rec = rec + 1
-            self._seq[stream] = seq + 1
+            self._seq[stream] = max(self._seq.get(stream, 0), seq + 1)
             self._unacked += 1
             self._data_dirty = True
             self._state_dirty = True
             if self._bytes > self.max_bytes:
-                self._enforce_bound()
+                try:
+                    self._enforce_bound()
+                except OSError as exc:   # the record is stored; the bound is kept next time
+                    self.log.warning("outbox %s: size bound not enforced (%s)", self.path, exc)
             return rec, seq
+
+    def _write_record(self, seg: _Segment, data: bytes) -> None:
+        """Write one whole record at the end of the open segment, or raise OSError with the
+        file as it was (a part written before the error is cut off again)."""
+        view = memoryview(data)
+        done = 0
+        try:
+            while done < len(data):
+                n = self._wfile.write(view[done:])
+                if not n:
+                    raise OSError(errno.EIO, "short write to the outbox")
+                done += n
+        except OSError:
+            if done:
+                self._cut_partial(seg)
+            raise
+
+    def _cut_partial(self, seg: _Segment) -> None:
+        """Remove a record written in part after `seg.size`; if the file cannot be cut, mark
+        the bytes as a skipped range so the reader (and the scan at the next open) steps over."""
+        fd = self._wfile.fileno()
+        try:
+            os.ftruncate(fd, seg.size)
+            return
+        except OSError as exc:
+            self.log.warning("outbox %s: cannot cut a partly written record (%s); it is "
+                             "skipped", seg.path, exc)
+        try:
+            end = os.fstat(fd).st_size
+        except OSError:
+            end = seg.size
+        if end > seg.size:
+            seg.skips[seg.size] = end
+            self._bytes += end - seg.size
+            seg.size = end
+
+    def take_seq(self, stream: str) -> int:
+        """Next sequence number of a logged stream for a message not (yet) stored here, e.g.
+        kept in memory while the disk is full; persisted with the next state write."""
+        with self._lock:
+            seq = self._seq.get(stream, 0)
+            self._seq[stream] = seq + 1
+            self._state_dirty = True
+            return seq
+
+    def check_writable(self) -> None:
+        """Write the state file now; raises OSError when the disk does not take it."""
+        with self._lock:
+            self._check_open()
+            self._write_state_doc(self._state_doc(), raise_errors=True)
 
     def allocate_seq(self, stream: str) -> int:
         """Next sequence number of a stream that is published without the log (QoS 0, status).
@@ -391,7 +453,12 @@ class Outbox:
             seq = self._seq.get(stream, 0)
             if seq + 1 > self._reserved.get(stream, 0):
                 self._reserved[stream] = seq + SEQ_RESERVE
-                self._write_state()
+                try:
+                    self._write_state()
+                except OSError:
+                    # disk full or read-only: go on (logged once in _write_state_doc); the
+                    # reservation is written by the next sync that succeeds
+                    self._state_dirty = True
             self._seq[stream] = seq + 1
             return seq
 
@@ -416,26 +483,20 @@ class Outbox:
                 path = os.path.join(self.path, _segment_name(self._next_rec))
                 seg = _Segment(path, self._next_rec, self._next_rec - 1, 0, 0, {})
                 self._segments.append(seg)
-            self._wfile = open(seg.path, "ab", buffering=1 << 20)
+            self._wfile = open(seg.path, "ab", buffering=0)
             self._wseg = seg
             self._fsync_dir()
         return seg
 
     def _roll(self) -> None:
         if self._wfile is not None:
-            self._wfile.flush()
             self._unsynced_fds.append(os.dup(self._wfile.fileno()))   # fsynced by the next sync
             self._wfile.close()
         self._wfile = None
         self._wseg = None
-        self._wbuf_bytes = 0
 
     def flush(self) -> None:
-        """Hand buffered appends to the OS (survives a kill of the process; not a power loss)."""
-        with self._lock:
-            if self._wfile is not None and self._wbuf_bytes:
-                self._wfile.flush()
-                self._wbuf_bytes = 0
+        """Kept for callers: appends reach the OS at once (a kill loses nothing appended)."""
 
     def _enforce_bound(self) -> None:
         while self._bytes > self.max_bytes and self._segments:
@@ -516,8 +577,6 @@ class Outbox:
             self._roff = off
         if off + _HDR > seg.size:
             return None
-        if seg is self._wseg and self._wbuf_bytes:
-            self.flush()
         fd = self._open_reader(seg)
         hdr = os.pread(fd, _HDR, off)
         if len(hdr) < _HDR:
@@ -641,9 +700,7 @@ class Outbox:
         self._last_sync = time.monotonic()
         doomed, self._doomed = self._doomed, []
         fds, self._unsynced_fds = self._unsynced_fds, []
-        if self._wfile is not None and (self._data_dirty or self._wbuf_bytes):
-            self._wfile.flush()
-            self._wbuf_bytes = 0
+        if self._wfile is not None and self._data_dirty:
             fds.append(os.dup(self._wfile.fileno()))
         self._data_dirty = False
         state = None
@@ -665,7 +722,9 @@ class Outbox:
             finally:
                 os.close(fd)
         if state is not None:
-            self._write_state_doc(state)
+            self._write_state_doc(state, raise_errors=False)
+            if self._state_written_gen < state["gen"]:
+                return                    # not written: segments stay until it is
             self._durable_acked = max(self._durable_acked, state["acked"])
 
     def _remove_acked_segments(self, acked: int) -> bool:
@@ -694,17 +753,34 @@ class Outbox:
         """Write the current state now (blocking)."""
         self._write_state_doc(self._state_doc())
 
-    def _write_state_doc(self, state: dict) -> None:
+    def _write_state_doc(self, state: dict, raise_errors: bool = True) -> None:
         with self._state_lock:
             if state["gen"] <= self._state_written_gen:
                 return                    # a newer state is already on disk
             path = os.path.join(self.path, _STATE)
             tmp = path + ".tmp"
-            with open(tmp, "wb") as fh:
-                fh.write(json.dumps(state, sort_keys=True).encode("utf-8"))
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
+            try:
+                with open(tmp, "wb") as fh:
+                    fh.write(json.dumps(state, sort_keys=True).encode("utf-8"))
+                    fh.flush()
+                    os.fsync(fh.fileno())
+                os.replace(tmp, path)
+            except OSError as exc:
+                # disk full / read-only: the old state file stays whole; write again later
+                self._state_dirty = True
+                key = f"{type(exc).__name__}: {exc}"
+                if key != self.write_error:
+                    self.log.error("outbox state %s not written (%s); retried at the next "
+                                   "sync", path, exc)
+                self.write_error = key
+                try:
+                    os.remove(tmp)
+                except OSError:
+                    pass
+                if raise_errors:
+                    raise
+                return
+            self.write_error = None
             self._state_written_gen = state["gen"]
 
     def _fsync_dir(self) -> None:
@@ -784,6 +860,6 @@ class Outbox:
         oldest = self.oldest_unacked_time_ns()
         return {"path": self.path, "depth": self.depth, "in_flight": self.in_flight,
                 "bytes": self.bytes, "max_bytes": self.max_bytes, "dropped": self.dropped,
-                "corrupt_skipped": self.corrupt,
+                "corrupt_skipped": self.corrupt, "state_write_error": self.write_error,
                 "oldest_unsent_age_s": None if oldest is None
                 else max(0.0, (time.time_ns() - oldest) / 1e9)}
