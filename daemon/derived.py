@@ -139,6 +139,10 @@ class CorrectionStage:
             fin = np.isfinite(col)
             if fin.any():
                 self.last_temperature_c[tc] = float(col[fin].mean())
+        # gauges on one temperature channel with one data sheet share the polynomial and the
+        # GF(T) factor: compute each once per block, not once per gauge
+        poly_cache: dict[tuple, np.ndarray] = {}
+        drift_cache: dict[tuple, np.ndarray] = {}
         for t in self.thermal:
             temp = values[:, t.tcol]
             quality[:, t.col] |= quality[:, t.tcol]
@@ -155,11 +159,18 @@ class CorrectionStage:
                                   "reason": "no tare with a temperature yet: the mean "
                                             "temperature of the first block is the reference"},
                                  {"temperature_at_zero_c": first})
-                app = thermal.apparent_strain_microstrain(temp, t.coeffs, t.gf_ref, t.gf_used)
+                pkey = (t.tcol, tuple(np.asarray(t.coeffs, dtype=float).tolist()), t.gf_ref)
+                if pkey not in poly_cache:  # thermal output at gf_used = gf_ref, then scaled
+                    poly_cache[pkey] = thermal.apparent_strain_microstrain(temp, t.coeffs,
+                                                                           t.gf_ref, t.gf_ref)
+                app = poly_cache[pkey] * (t.gf_ref / t.gf_used)
                 eps = eps - (app - t.app_zero)
             if t.alpha != 0.0:
-                eps = thermal.correct_gauge_factor_drift(eps, temp, t.gf_used, t.gf_used, t.alpha,
-                                                         t.t_ref_c)
+                dkey = (t.tcol, t.alpha, t.t_ref_c)
+                if dkey not in drift_cache:  # GF / GF(T), the same for every such gauge
+                    drift_cache[dkey] = thermal.correct_gauge_factor_drift(
+                        np.ones_like(temp), temp, 1.0, 1.0, t.alpha, t.t_ref_c)
+                eps = eps * drift_cache[dkey]
             values[:, t.col] = eps
         for a, b, kt in self.pairs:
             ea, eb = thermal.correct_pair(values[:, a], values[:, b], kt)

@@ -33,15 +33,36 @@ from straind.supervisor import device_setup
 from straind.timebase import Timebase
 
 
-def _config(channels: int, rate_hz: float, block: int, path: Path, realtime: bool) -> str:
+def _config(channels: int, rate_hz: float, block: int, path: Path, realtime: bool,
+            corrections: bool = False) -> str:
     chans = []
+    derived = ""
     bridges = ["quarter", "half-bending", "full-bending", "quarter"]
-    for i in range(channels):
-        b = bridges[i % len(bridges)]
+    first = 0
+    if corrections:
+        # every correction on: an RTD on the specimen, software thermal-output compensation and
+        # GF(T) on every quarter-bridge gauge, a rosette with stresses, uniaxial stress, creep
+        chans.append("      - {name: rtd, sensor: rtd, element: pt100, reference_ohm: 400, "
+                     "wiring: 4-wire, gain: 1, options: {truth: {kind: sine, offset: 120, "
+                     "amplitude: 5, frequency_hz: 0.1}}}")
+        first = 1
+        derived = """    derived:
+      - {name: ros, kind: rosette, gauges: [c01, c02, c03], layout: rectangular,
+         material: {e_mpa: 200000, poisson: 0.3}}
+      - {name: sig, kind: uniaxial_stress, gauge: c04, e_mpa: 200000}
+      - {name: crp, kind: creep, gauge: c05, window_s: 60, reference: tare}
+"""
+    for i in range(first, channels):
+        b = "quarter" if corrections else bridges[i % len(bridges)]
+        thermal = ""
+        if corrections:
+            thermal = (", thermal: {compensation: software, temperature_channel: rtd, "
+                       "thermal_output: {coefficients: [-31.5, 2.21, -0.0412, 1.62e-4, -2.1e-7], "
+                       "gauge_factor_ref: 2.0}, gf_alpha_per_c: 1.1e-4}")
         chans.append(
             f"      - {{name: c{i:02d}, sensor: strain_gauge, gauge_factor: 2.05, gauge_ohm: 350, "
-            f"bridge: {b}, lead_ohm: {0.5 if b != 'full-bending' else 0}, excitation_v: 5, "
-            f"options: {{truth: {{kind: sine, offset: {100 * i}, amplitude: 50, "
+            f"bridge: {b}, lead_ohm: {0.5 if b != 'full-bending' else 0}, excitation_v: 5"
+            f"{thermal}, options: {{truth: {{kind: sine, offset: {100 * i}, amplitude: 50, "
             f"frequency_hz: 1.5}}}}}}")
     return f"""
 station: {{id: bench}}
@@ -54,7 +75,7 @@ devices:
     adc: {{gain: 128}}
     options: {{seed: 3, noise_nv_per_v: 30, realtime: {str(realtime).lower()}}}
     channels:
-""" + "\n".join(chans) + "\n"
+""" + "\n".join(chans) + "\n" + derived
 
 
 def _pipeline(cfg_text: str, seconds: float | None, blocks: list | None, path: Path,
@@ -107,13 +128,14 @@ def _plain_h5py(blocks: list, chain: DeviceChain, path: Path) -> tuple[int, floa
     m = blocks[0].n_channels
     chunk = max(1024, blocks[0].n_samples)
     engs = [chain.convert(b.with_time(i * 1_000_000_000)) for i, b in enumerate(blocks)]
+    k = engs[0].values.shape[1]   # measured and derived columns
     t0 = time.perf_counter()
     with h5py.File(path, "w", libver="latest") as f:
         g = f.create_group("devices/d")
         ds_t = g.create_dataset("time_ns", (0,), np.int64, maxshape=(None,), chunks=(chunk,))
         ds_r = g.create_dataset("raw", (0, m), np.int32, maxshape=(None, m), chunks=(chunk, m))
-        ds_v = g.create_dataset("value", (0, m), np.float64, maxshape=(None, m), chunks=(chunk, m))
-        ds_q = g.create_dataset("quality", (0, m), np.uint8, maxshape=(None, m), chunks=(chunk, m))
+        ds_v = g.create_dataset("value", (0, k), np.float64, maxshape=(None, k), chunks=(chunk, k))
+        ds_q = g.create_dataset("quality", (0, k), np.uint8, maxshape=(None, k), chunks=(chunk, k))
         f.swmr_mode = True
         n = 0
         last_flush = time.perf_counter()
@@ -138,21 +160,25 @@ def main() -> int:
     ap.add_argument("--realtime-s", type=float, default=10.0,
                     help="length of the real-time CPU measurement (0 to skip)")
     ap.add_argument("--dir", default=None, help="where to write (default: a temp dir)")
+    ap.add_argument("--corrections", action="store_true",
+                    help="every correction on: RTD, thermal output and GF(T) compensation on "
+                         "every gauge, a rosette with stresses, uniaxial stress, creep rate")
     args = ap.parse_args()
     base = Path(args.dir or tempfile.mkdtemp(prefix="straind-bench-"))
     m = args.channels
     try:
         # 1. full pipeline flat out
-        cfg = _config(m, 10_000, args.block, base / "p1", realtime=False)
+        cfg = _config(m, 10_000, args.block, base / "p1", False, args.corrections)
         rows, wall, cpu, _ = _pipeline(cfg, args.seconds, None, base / "p1")
         full = rows * m / wall
-        print(f"full pipeline (sim -> chain -> HDF5), {m} ch, blocks of {args.block}: "
+        what = "every correction on" if args.corrections else "plain bridges"
+        print(f"full pipeline (sim -> chain -> HDF5, {what}), {m} ch, blocks of {args.block}: "
               f"{full / 1e6:.2f} M channel-samples/s ({rows} rows in {wall:.2f} s, "
               f"CPU {cpu / wall:.2f} cores)")
 
         # 2. same blocks: straind chain + store vs plain h5py appends
         n_blocks = max(20, int(full * 2 / (m * args.block)))
-        cfg2 = _config(m, 10_000, args.block, base / "p2", realtime=False)
+        cfg2 = _config(m, 10_000, args.block, base / "p2", False, args.corrections)
         dev = load_config_text(cfg2).devices[0]
         drv = SimulatedBridge(device_setup(dev), dev["options"])
         drv.open()
@@ -168,7 +194,7 @@ def main() -> int:
 
         # 3. real-time CPU share at 32 x 10 000 S/s
         if args.realtime_s > 0:
-            cfg4 = _config(m, 10_000, 1000, base / "p4", realtime=True)
+            cfg4 = _config(m, 10_000, 1000, base / "p4", True, args.corrections)
             rows4, wall4, cpu4, _ = _pipeline(cfg4, args.realtime_s, None, base / "p4")
             print(f"real time {m} ch x 10 000 S/s for {wall4:.1f} s: {rows4 * m / wall4 / 1e3:.0f} k "
                   f"ch-samples/s using {100 * cpu4 / wall4:.1f} % of one core")
