@@ -180,6 +180,8 @@ def _apply(svc: "Service", new_cfg: Config, plan: ReloadPlan, reason: str,
              for name, (cls, chain) in built.items()}
     for name in plan.restart:
         fresh[name].note_gap(f"device restarted ({reason})", old_by_name[name].last_time_ns)
+        if not force_segment:  # the same segment goes on: its times must keep increasing
+            fresh[name].timebase.floor_ns = old_by_name[name].timebase.floor_ns
     svc.runners = [fresh.get(d["name"]) or old_by_name[d["name"]] for d in new_cfg.devices]
     for r in svc.runners:
         r.sinks = list(svc.sinks)

@@ -40,6 +40,8 @@ class Timebase:
         self.anchor_index = 0
         self._offset_ns: int | None = None  # wall - mono at the last check
         self.steps: list[ClockStep] = []
+        #: time of the last sample stamped (also handed over from a runner this one replaces)
+        self.floor_ns: int | None = None
 
     def reanchor(self) -> None:
         """Anchor again at the next block (after a driver reopen or at a new segment)."""
@@ -48,9 +50,15 @@ class Timebase:
     def stamp(self, block: Block) -> Block:
         if self.anchor_ns is None or block.start_index < self.anchor_index:
             # the block's last sample arrived at host_wall_ns
-            self.anchor_ns = block.host_wall_ns - (block.n_samples - 1) * self.period_ns
+            anchor = block.host_wall_ns - (block.n_samples - 1) * self.period_ns
+            if self.floor_ns is not None and 0 <= self.floor_ns - anchor < STEP_THRESHOLD_NS:
+                # the sample clock ran a little ahead of the host clock before the reopen: keep
+                # times increasing (a larger overlap is a clock step, left for the store to see)
+                anchor = self.floor_ns + self.period_ns
+            self.anchor_ns = anchor
             self.anchor_index = block.start_index
         t0 = self.anchor_ns + (block.start_index - self.anchor_index) * self.period_ns
+        self.floor_ns = t0 + (block.n_samples - 1) * self.period_ns
         return block.with_time(t0)
 
     def check_clock(self) -> ClockStep | None:
