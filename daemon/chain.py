@@ -83,6 +83,8 @@ class ChannelConverter:
     valid_range: Callable[[np.ndarray], np.ndarray] | None = None
     attrs: dict[str, Any] = field(default_factory=dict)
     full_scale_ratio: float = float("nan")
+    #: (lo, hi): the open interval of values valid_range accepts, for the vectorised check
+    value_bounds: tuple[float, float] | None = None
     #: temperature channels: no tare; a thermocouple may read its cold junction from another
     #: channel (`junction`), then `func_junction(v, junction_c)` converts.
     tareable: bool = True
@@ -144,7 +146,9 @@ def _strain_converter(ch: Mapping[str, Any]) -> ChannelConverter:
         attrs["shunt_arm"] = int(ch["shunt"]["arm"])
     zero = float(bridge.ratio_forward(circuit, np.zeros(1))[0])
     return ChannelConverter(ch["name"], "microstrain", "strain", mobius, func, zero,
-                            physical if mobius is not None else None, attrs)
+                            physical if mobius is not None else None, attrs,
+                            value_bounds=(tuple(sorted((x_lo * scale, x_hi * scale)))
+                                          if mobius is not None else None))
 
 
 def _transducer_converter(ch: Mapping[str, Any]) -> ChannelConverter:
@@ -374,6 +378,13 @@ class DeviceChain:
         self._all_mobius = len(cols) == len(self.converters)
         self._checks = [(k, i) for k, i in enumerate(cols)
                         if self.converters[i].valid_range is not None]
+        # the same checks as one operation over the columns whose bounds are known
+        vec = [i for _, i in self._checks if self.converters[i].value_bounds is not None]
+        self._check_cols = np.array(vec, dtype=np.intp)
+        self._check_lo = np.array([self.converters[i].value_bounds[0] for i in vec])
+        self._check_hi = np.array([self.converters[i].value_bounds[1] for i in vec])
+        self._checks = [(k, i) for k, i in self._checks
+                        if self.converters[i].value_bounds is None]
 
     # -- conversion ---------------------------------------------------------------------------
     def ratio(self, block: Block) -> np.ndarray:
@@ -406,6 +417,13 @@ class DeviceChain:
                 qc = q[:, cols]
                 with np.errstate(divide="ignore", invalid="ignore"):
                     values[:, cols] = (self._A * qc + self._B) / (self._C * qc + self._D)
+            if len(self._check_cols):
+                vc = values[:, self._check_cols]
+                with np.errstate(invalid="ignore"):
+                    bad = ~((vc > self._check_lo) & (vc < self._check_hi))
+                if bad.any():
+                    quality[:, self._check_cols] |= bad.astype(np.uint8) * np.uint8(
+                        Quality.OUT_OF_RANGE)
             for k, i in self._checks:
                 bad = ~self.converters[i].valid_range(values[:, i])
                 if bad.any():

@@ -139,39 +139,38 @@ class CorrectionStage:
             fin = np.isfinite(col)
             if fin.any():
                 self.last_temperature_c[tc] = float(col[fin].mean())
-        # gauges on one temperature channel with one data sheet share the polynomial and the
-        # GF(T) factor: compute each once per block, not once per gauge
-        poly_cache: dict[tuple, np.ndarray] = {}
-        drift_cache: dict[tuple, np.ndarray] = {}
         for t in self.thermal:
-            temp = values[:, t.tcol]
-            quality[:, t.col] |= quality[:, t.tcol]
-            eps = values[:, t.col]
-            if t.coeffs is not None:
-                if not math.isfinite(t.t_zero_c):
-                    first = self.last_temperature_c.get(t.tcol)
-                    if first is not None:
-                        self.set_temperature_zero(t.col, first)
-                        note = self.notify()
-                        if note is not None:
-                            note("thermal_reference", t.name,
-                                 {"temperature_at_zero_c": first,
-                                  "reason": "no tare with a temperature yet: the mean "
-                                            "temperature of the first block is the reference"},
-                                 {"temperature_at_zero_c": first})
-                pkey = (t.tcol, tuple(np.asarray(t.coeffs, dtype=float).tolist()), t.gf_ref)
-                if pkey not in poly_cache:  # thermal output at gf_used = gf_ref, then scaled
-                    poly_cache[pkey] = thermal.apparent_strain_microstrain(temp, t.coeffs,
-                                                                           t.gf_ref, t.gf_ref)
-                app = poly_cache[pkey] * (t.gf_ref / t.gf_used)
-                eps = eps - (app - t.app_zero)
-            if t.alpha != 0.0:
-                dkey = (t.tcol, t.alpha, t.t_ref_c)
-                if dkey not in drift_cache:  # GF / GF(T), the same for every such gauge
-                    drift_cache[dkey] = thermal.correct_gauge_factor_drift(
-                        np.ones_like(temp), temp, 1.0, 1.0, t.alpha, t.t_ref_c)
-                eps = eps * drift_cache[dkey]
-            values[:, t.col] = eps
+            if t.coeffs is not None and not math.isfinite(t.t_zero_c):
+                first = self.last_temperature_c.get(t.tcol)
+                if first is not None:
+                    self.set_temperature_zero(t.col, first)
+                    note = self.notify()
+                    if note is not None:
+                        note("thermal_reference", t.name,
+                             {"temperature_at_zero_c": first,
+                              "reason": "no tare with a temperature yet: the mean "
+                                        "temperature of the first block is the reference"},
+                             {"temperature_at_zero_c": first})
+        # gauges on one temperature channel with one data sheet and one GF(T) coefficient are
+        # corrected together: the thermal output polynomial and the GF(T) factor are computed
+        # once per block for the group, then applied to all its columns in one operation
+        for (tcol, coeffs, gf_ref, alpha, t_ref), members in self._groups().items():
+            temp = values[:, tcol]
+            cols = np.fromiter((t.col for t in members), dtype=np.intp, count=len(members))
+            block = values[:, cols]
+            if coeffs is not None:
+                poly = thermal.apparent_strain_microstrain(temp, coeffs, gf_ref, gf_ref)
+                scale = np.fromiter((gf_ref / t.gf_used for t in members), dtype=np.float64,
+                                    count=len(members))
+                zero = np.fromiter((t.app_zero for t in members), dtype=np.float64,
+                                   count=len(members))
+                block = block - (poly[:, None] * scale - zero)
+            if alpha != 0.0:
+                drift = thermal.correct_gauge_factor_drift(np.ones_like(temp), temp, 1.0, 1.0,
+                                                           alpha, t_ref)
+                block = block * drift[:, None]
+            values[:, cols] = block
+            quality[:, cols] |= quality[:, tcol][:, None]
         for a, b, kt in self.pairs:
             ea, eb = thermal.correct_pair(values[:, a], values[:, b], kt)
             values[:, a] = ea
@@ -179,6 +178,19 @@ class CorrectionStage:
             q = quality[:, a] | quality[:, b]
             quality[:, a] = q
             quality[:, b] = q
+
+    def _groups(self) -> dict[tuple, list[_Thermal]]:
+        """Thermal entries grouped by (temperature column, coefficients, GF_ref, alpha, T_ref)."""
+        groups = getattr(self, "_group_cache", None)
+        if groups is None:
+            groups = {}
+            for t in self.thermal:
+                coeffs = None if t.coeffs is None else tuple(float(c) for c in t.coeffs)
+                key = (t.tcol, coeffs, t.gf_ref if coeffs is not None else 1.0, t.alpha,
+                       t.t_ref_c if t.alpha != 0.0 else 0.0)
+                groups.setdefault(key, []).append(t)
+            self._group_cache = groups
+        return groups
 
     def attrs(self, col: int) -> dict[str, Any]:
         t = self.entry(col)

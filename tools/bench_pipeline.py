@@ -34,18 +34,20 @@ from straind.timebase import Timebase
 
 
 def _config(channels: int, rate_hz: float, block: int, path: Path, realtime: bool,
-            corrections: bool = False) -> str:
+            corrections: bool = False, derived_on: bool = False) -> str:
     chans = []
     derived = ""
     bridges = ["quarter", "half-bending", "full-bending", "quarter"]
     first = 0
     if corrections:
         # every correction on: an RTD on the specimen, software thermal-output compensation and
-        # GF(T) on every quarter-bridge gauge, a rosette with stresses, uniaxial stress, creep
+        # GF(T) on every quarter-bridge gauge, 3-wire leads; with derived_on also a rosette with
+        # stresses, uniaxial stress and a creep rate
         chans.append("      - {name: rtd, sensor: rtd, element: pt100, reference_ohm: 400, "
                      "wiring: 4-wire, gain: 1, options: {truth: {kind: sine, offset: 120, "
                      "amplitude: 5, frequency_hz: 0.1}}}")
         first = 1
+    if derived_on:
         derived = """    derived:
       - {name: ros, kind: rosette, gauges: [c01, c02, c03], layout: rectangular,
          material: {e_mpa: 200000, poisson: 0.3}}
@@ -162,23 +164,28 @@ def main() -> int:
     ap.add_argument("--dir", default=None, help="where to write (default: a temp dir)")
     ap.add_argument("--corrections", action="store_true",
                     help="every correction on: RTD, thermal output and GF(T) compensation on "
-                         "every gauge, a rosette with stresses, uniaxial stress, creep rate")
+                         "every gauge (3-wire leads)")
+    ap.add_argument("--derived", action="store_true",
+                    help="with --corrections: also derived columns (rosette with stresses, "
+                         "uniaxial stress, creep rate per sample)")
     args = ap.parse_args()
     base = Path(args.dir or tempfile.mkdtemp(prefix="straind-bench-"))
     m = args.channels
     try:
         # 1. full pipeline flat out
-        cfg = _config(m, 10_000, args.block, base / "p1", False, args.corrections)
+        cfg = _config(m, 10_000, args.block, base / "p1", False, args.corrections, args.derived)
         rows, wall, cpu, _ = _pipeline(cfg, args.seconds, None, base / "p1")
         full = rows * m / wall
         what = "every correction on" if args.corrections else "plain bridges"
+        if args.derived:
+            what += " and derived columns"
         print(f"full pipeline (sim -> chain -> HDF5, {what}), {m} ch, blocks of {args.block}: "
               f"{full / 1e6:.2f} M channel-samples/s ({rows} rows in {wall:.2f} s, "
               f"CPU {cpu / wall:.2f} cores)")
 
         # 2. same blocks: straind chain + store vs plain h5py appends
         n_blocks = max(20, int(full * 2 / (m * args.block)))
-        cfg2 = _config(m, 10_000, args.block, base / "p2", False, args.corrections)
+        cfg2 = _config(m, 10_000, args.block, base / "p2", False, args.corrections, args.derived)
         dev = load_config_text(cfg2).devices[0]
         drv = SimulatedBridge(device_setup(dev), dev["options"])
         drv.open()
@@ -194,7 +201,7 @@ def main() -> int:
 
         # 3. real-time CPU share at 32 x 10 000 S/s
         if args.realtime_s > 0:
-            cfg4 = _config(m, 10_000, 1000, base / "p4", True, args.corrections)
+            cfg4 = _config(m, 10_000, 1000, base / "p4", True, args.corrections, args.derived)
             rows4, wall4, cpu4, _ = _pipeline(cfg4, args.realtime_s, None, base / "p4")
             print(f"real time {m} ch x 10 000 S/s for {wall4:.1f} s: {rows4 * m / wall4 / 1e3:.0f} k "
                   f"ch-samples/s using {100 * cpu4 / wall4:.1f} % of one core")
