@@ -393,7 +393,7 @@ def test_two_wire_desensitisation_first_order():
 
 
 def test_circuit_for_lead_placement():
-    # Our wiring convention (team brief): where each arrangement's leads sit.
+    # Our wiring convention (circuit_for's docstring): where each arrangement's leads sit.
     def leads(**kw):
         return circuit_for(gauge_ohm=120.0, lead_ohm=2.0, **kw).lead_ohm
     assert leads(bridge="quarter", wiring="2-wire") == (4.0, 0.0, 0.0, 0.0)

@@ -55,7 +55,7 @@ def test_quarter_bridge_worked_value() -> None:
 """)
     code = round(4.995005e-4 * 2**23 * 128)
     out = ch.convert(_block([code]))
-    # one code is about 0.0019 microstrain at G 128 (MEASUREMENT: 9.31e-10 V/V per code)
+    # one code is about 0.0019 microstrain at G 128 (one code is 1 / (2**23 * 128) = 9.31e-10 V/V)
     assert out.values[0, 0] == pytest.approx(1000.0, abs=0.002)
     assert out.units == ("microstrain",)
 
@@ -165,7 +165,7 @@ def test_range_table_quarter_bridge() -> None:
          bridge: quarter, excitation_v: 5, {TRUTH}}}
 """)
     row = ch.range_table()[0]
-    # full scale 7.8 mV/V at G 128 (MEASUREMENT); quarter bridge x = 4Vr/(1-2Vr)
+    # full scale 1/128 V/V = 7.8 mV/V at G 128; quarter bridge x = 4Vr/(1-2Vr) (Dally & Riley)
     fs = (2**23 - 2) / (2**23 * 128)
     assert row["max"] == pytest.approx(4 * fs / (1 - 2 * fs) / 2 * 1e6, rel=1e-9)
     assert row["resolution"] == pytest.approx(0.0019, rel=0.03)

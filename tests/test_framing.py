@@ -80,7 +80,7 @@ def test_command_layout() -> None:
 
 
 def test_decode_24bit_against_int_from_bytes() -> None:
-    # MEASUREMENT.md: decode as two's complement, checked against int.from_bytes(signed=True)
+    # signed 24-bit two's complement, checked against int.from_bytes(signed=True)
     raw = RNG.integers(0, 256, size=(2000, 3), dtype=np.uint8)
     raw[:4] = [[0x7F, 0xFF, 0xFF], [0x80, 0x00, 0x00], [0xFF, 0xFF, 0xFF], [0, 0, 0]]
     ref = [int.from_bytes(bytes(r), "big", signed=True) for r in raw.tolist()]

@@ -123,7 +123,7 @@ def _check_file(path: Path, sim: BridgeSimulator) -> tuple[np.ndarray, list]:
         np.testing.assert_array_equal(raw[rows], codes)
         truth = sim.truth(int(b["start_index"]), int(b["n"]))
         # noise 20 nV/V RMS is 0.04 microstrain on a GF 2 quarter bridge (4 Vr / GF) and
-        # 0.02 on the half bridge (2 Vr / GF, MEASUREMENT.md): 0.5 microstrain is > 10 sigma
+        # 0.02 on the half bridge (2 Vr / GF, Dally & Riley: half bridge in bending): 0.5 microstrain is > 10 sigma
         np.testing.assert_allclose(value[rows], truth, atol=0.5)
     # nothing unusable (CLOCK_UNSYNCED may be set: the test host's clock is not disciplined)
     assert not np.any(quality & np.uint8(UNUSABLE)) and np.all(np.isfinite(value))

@@ -93,7 +93,7 @@ def solve_network(elements: list[tuple[str, str, float]], v_ex: float,
 
 
 def inverse_quarter_3wire(vr: np.ndarray, r: float = 0.0) -> np.ndarray:
-    """x from Vr for a quarter bridge, 3-wire (MEASUREMENT.md table; Dally & Riley, 4th ed.)."""
+    """x from Vr for a quarter bridge, 3-wire (Window, Strain Gauge Technology: 3-wire quarter bridge)."""
     return 4.0 * vr * (1.0 + r) / (1.0 - 2.0 * vr)
 
 
@@ -283,7 +283,7 @@ def test_noise_rms_matches_configuration():
     setup = device(*chs)
     clean = sim(setup).ratio(0, 1)[0] * FS * 128          # noise-free, unrounded
     codes, _ = sim(setup, noise_nv_per_v=20.0, seed=3).codes(0, 40000)
-    step_nv = 1e9 / (FS * 128)          # one code in nV/V (MEASUREMENT.md: 9.31e-10 V/V at G 128)
+    step_nv = 1e9 / (FS * 128)          # one code in nV/V (1 / (2**23 * 128) = 9.31e-10 V/V at G 128)
     dev_nv = (codes - clean) * step_nv
     rms = np.sqrt(np.mean(dev_nv ** 2, axis=0))
     expected = np.sqrt(np.array([20.0, 5.0]) ** 2 + step_nv ** 2 / 12)   # plus quantisation
@@ -321,7 +321,7 @@ def test_saturation_codes_and_open_bridge():
     chs = [gauge(0, const(20000.0)), gauge(1, const(-20000.0)), gauge(2, const(7000.0)),
            gauge(3, const(100.0), name="broken")]
     codes, q = sim(device(*chs), noise_nv_per_v=500.0, open_bridge_channels=["broken"]).codes(0, 300)
-    # full scale at gain 128 is 1/128 V/V = 7.8 mV/V (MEASUREMENT.md); 20000 microstrain on a
+    # full scale at gain 128 is 1/128 V/V = 7.8 mV/V (arithmetic); 20000 microstrain on a
     # GF 2 quarter bridge is about 9.9 mV/V
     assert np.all(codes[:, 0] == CODE_MAX) and np.all(codes[:, 1] == CODE_MIN)
     assert np.all(q[:, :2] & Quality.SATURATED)
