@@ -48,7 +48,7 @@ import numpy as np
 
 from straind.block import Quality
 from straind.drivers.base import (ChannelSetup, DeviceSetup, DriverConfigError, DriverError,
-                                  DriverInfo, DriverIOError)
+                                  DriverIOError)
 from straind.drivers.framing import (SEQ_MODULO, ControlFrame, FrameParser, FrameType,
                                      NakReason, Parsed, data_frame_bytes, encode_command,
                                      encode_data_frames, sniff_data_format)
@@ -87,6 +87,8 @@ class SerialFrames(SerialStreamDriver):
                         doc="position of the channel in the frame"),
     })
     MAX_CHANNELS = 255
+    CAN_SHUNT = True
+    PROTOCOL = "straind framed binary, CRC-16/CCITT-FALSE"
     MIN_RATE_HZ = 0.001
     MAX_RATE_HZ = 1_000_000.0
 
@@ -118,21 +120,9 @@ class SerialFrames(SerialStreamDriver):
 
     # -- description and checks --------------------------------------------------------------
     @classmethod
-    def static_info(cls, options: Mapping[str, Any]) -> DriverInfo:
-        return DriverInfo(summary=cls.summary, max_channels=cls.MAX_CHANNELS,
-                          min_rate_hz=cls.MIN_RATE_HZ, max_rate_hz=cls.MAX_RATE_HZ,
-                          native="code24", can_shunt=True,
-                          details={"protocol": "straind framed binary, CRC-16/CCITT-FALSE",
-                                   "port": str(options.get("port", ""))})
-
-    @classmethod
     def check_setup(cls, setup: DeviceSetup, options: Mapping[str, Any], path: str) -> None:
         super().check_setup(setup, options, path)
         opts = _validated(cls.OPTIONS, options, f"{path}.options")
-        if not setup.channels:
-            raise DriverConfigError(f"{path}.channels", "needs at least one channel")
-        if setup.block_samples < 1:
-            raise DriverConfigError(f"{path}.block_samples", "must be >= 1")
         fc = int(opts["frame_channels"]) or None
         cls._check_columns(setup, path, fc)
         if opts["set_gain"] and not (setup.config.get("adc") or {}).get("gain"):

@@ -39,7 +39,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from straind.block import CODE_MAX, CODE_MIN, Quality
-from straind.drivers.base import ChannelSetup, DeviceSetup, DriverConfigError, DriverInfo
+from straind.drivers.base import ChannelSetup, DeviceSetup, DriverConfigError
 from straind.drivers.serialport import SerialStreamDriver, _validated, port_fields
 from straind.schema import ConfigError, Field, Section
 
@@ -273,6 +273,8 @@ class SerialLines(SerialStreamDriver):
                         doc="position of the channel among the code fields (after the counter)"),
     })
     MAX_CHANNELS = 255
+    CAN_SHUNT = False
+    PROTOCOL = "text lines of integer codes"
     MIN_RATE_HZ = 0.001
     MAX_RATE_HZ = 100_000.0
 
@@ -288,21 +290,9 @@ class SerialLines(SerialStreamDriver):
         self._ordinal_base = 0
 
     @classmethod
-    def static_info(cls, options: Mapping[str, Any]) -> DriverInfo:
-        return DriverInfo(summary=cls.summary, max_channels=cls.MAX_CHANNELS,
-                          min_rate_hz=cls.MIN_RATE_HZ, max_rate_hz=cls.MAX_RATE_HZ,
-                          native="code24", can_shunt=False,
-                          details={"protocol": "text lines of integer codes",
-                                   "port": str(options.get("port", ""))})
-
-    @classmethod
     def check_setup(cls, setup: DeviceSetup, options: Mapping[str, Any], path: str) -> None:
         super().check_setup(setup, options, path)
         opts = _validated(cls.OPTIONS, options, f"{path}.options")
-        if not setup.channels:
-            raise DriverConfigError(f"{path}.channels", "needs at least one channel")
-        if setup.block_samples < 1:
-            raise DriverConfigError(f"{path}.block_samples", "must be >= 1")
         exact = int(opts["fields"])
         limit = exact - int(opts["counter"]) if exact else None
         if limit is not None and limit < 1:

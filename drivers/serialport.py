@@ -26,7 +26,7 @@ from typing import Any, ClassVar, Mapping
 import numpy as np
 
 from straind.block import CODE_MAX, CODE_MIN, Block, Quality
-from straind.drivers.base import DeviceSetup, Driver, DriverConfigError, DriverIOError
+from straind.drivers.base import DeviceSetup, Driver, DriverConfigError, DriverInfo, DriverIOError
 from straind.schema import ConfigError, Field, Section, validate
 
 try:  # pyserial is a dependency of the package; keep the import error readable if it is missing
@@ -208,6 +208,27 @@ class SerialStreamDriver(Driver):
     """Base of the serial front-end drivers (see the module docstring)."""
 
     DEFAULT_BAUDRATE: ClassVar[int] = 115200
+    #: what static_info says about the subclass
+    CAN_SHUNT: ClassVar[bool] = False
+    PROTOCOL: ClassVar[str] = ""
+
+    @classmethod
+    def static_info(cls, options: Mapping[str, Any]) -> DriverInfo:
+        return DriverInfo(summary=cls.summary, max_channels=cls.MAX_CHANNELS,
+                          min_rate_hz=cls.MIN_RATE_HZ, max_rate_hz=cls.MAX_RATE_HZ,
+                          native="code24", can_shunt=cls.CAN_SHUNT,
+                          details={"protocol": cls.PROTOCOL,
+                                   "port": str(options.get("port", ""))})
+
+    @classmethod
+    def check_setup(cls, setup: DeviceSetup, options: Mapping[str, Any], path: str) -> None:
+        """Checks both serial drivers share; subclasses add their own after calling this."""
+        super().check_setup(setup, options, path)
+        _validated(cls.OPTIONS, options, f"{path}.options")
+        if not setup.channels:
+            raise DriverConfigError(f"{path}.channels", "needs at least one channel")
+        if setup.block_samples < 1:
+            raise DriverConfigError(f"{path}.block_samples", "must be >= 1")
 
     def __init__(self, setup: DeviceSetup, options: Mapping[str, Any]):
         super().__init__(setup, options)
