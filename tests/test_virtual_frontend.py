@@ -112,14 +112,20 @@ class FrontEnd:
         self.err.close()
 
 
-def _read(drv, seconds: float) -> list:
+def _read(drv, seconds: float, min_samples: int = 0, cap_s: float = 30.0) -> list:
+    """Read blocks for `seconds`, and on until `min_samples` have arrived (at most `cap_s`), so
+    that a slow, loaded machine makes a test longer rather than failing a count."""
     blocks = []
-    end = time.monotonic() + seconds
-    while time.monotonic() < end:
+    start = time.monotonic()
+    got = 0
+    while True:
+        elapsed = time.monotonic() - start
+        if elapsed >= cap_s or (elapsed >= seconds and got >= min_samples):
+            return blocks
         b = drv.read_block(0.25)
         if b is not None:
             blocks.append(b)
-    return blocks
+            got += b.n_samples
 
 
 def _frame_quality(q: np.ndarray, spf: int) -> np.ndarray:
@@ -148,11 +154,11 @@ def test_frames_over_pty_equal_the_simulator_with_shunt(tmp_path: Path) -> None:
     drv = SerialFrames(_driver_setup(cfg, 100), {"port": fe.path})
     try:
         drv.open()
-        blocks = _read(drv, 0.8)
+        blocks = _read(drv, 0.8, min_samples=800)
         drv.set_shunt(0, True)
-        blocks += _read(drv, 0.6)
+        blocks += _read(drv, 0.6, min_samples=600)
         drv.set_shunt(0, False)
-        blocks += _read(drv, 0.4)
+        blocks += _read(drv, 0.4, min_samples=400)
     finally:
         drv.close()
         fe.stop()
@@ -180,7 +186,7 @@ def test_lines_over_pty_equal_the_simulator(tmp_path: Path) -> None:
     drv = SerialLines(_driver_setup(cfg, 40), {"port": fe.path, "counter": True})
     try:
         drv.open()
-        blocks = _read(drv, 1.2)
+        blocks = _read(drv, 1.2, min_samples=400)
     finally:
         drv.close()
         fe.stop()
