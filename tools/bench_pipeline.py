@@ -103,8 +103,7 @@ def _pipeline(cfg_text: str, seconds: float | None, blocks: list | None, path: P
             if max_blocks is not None:
                 made.append(blk)
             eng = chain.convert(tb.stamp(blk))
-            while not store.submit(eng):  # flat out: wait for the writer instead of dropping
-                time.sleep(0.001)
+            _submit_waiting(store, eng)
             rows += blk.n_samples
             if seconds is not None and time.perf_counter() - t0 >= seconds:
                 break
@@ -114,15 +113,27 @@ def _pipeline(cfg_text: str, seconds: float | None, blocks: list | None, path: P
     else:
         for blk in blocks:
             eng = chain.convert(tb.stamp(blk))
-            while not store.submit(eng):
-                time.sleep(0.001)
+            _submit_waiting(store, eng)
             rows += blk.n_samples
     store.stop(timeout_s=600)
     wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
     st = store.status()
-    if st.get("dropped_blocks"):
-        print(f"  warning: the store dropped {st['dropped_blocks']} blocks", file=sys.stderr)
+    stored = sum(st["rows_total"].values())
+    if st.get("dropped_blocks") or stored != rows:
+        print(f"  warning: {rows} rows submitted, {stored} stored, {st['dropped_blocks']} blocks"
+              " refused", file=sys.stderr)
     return rows, wall, cpu, made
+
+
+def _submit_waiting(store: Store, eng) -> None:
+    """Flat out the producer outruns the writer: wait for room in the write queue (back
+    pressure) instead of letting the store refuse the block and log a drop."""
+    need = eng.values.nbytes + eng.quality.nbytes + eng.raw.data.nbytes + eng.raw.quality.nbytes
+    while True:
+        st = store.status()
+        if st["queue_bytes"] + need + 64 <= st["queue_limit_bytes"] and store.submit(eng):
+            return
+        time.sleep(0.001)
 
 
 def _plain_h5py(blocks: list, chain: DeviceChain, path: Path) -> tuple[int, float]:
@@ -154,7 +165,7 @@ def _plain_h5py(blocks: list, chain: DeviceChain, path: Path) -> tuple[int, floa
     return n, time.perf_counter() - t0
 
 
-def main() -> int:
+def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--channels", type=int, default=32)
     ap.add_argument("--block", type=int, default=1000, help="samples per block")
@@ -168,7 +179,10 @@ def main() -> int:
     ap.add_argument("--derived", action="store_true",
                     help="with --corrections: also derived columns (rosette with stresses, "
                          "uniaxial stress, creep rate per sample)")
-    args = ap.parse_args()
+    args = ap.parse_args(argv)
+    if args.derived and args.channels < 6:
+        ap.error("--derived needs --channels 6 or more (a rosette on c01-c03, stress on c04, "
+                 "creep on c05)")
     base = Path(args.dir or tempfile.mkdtemp(prefix="straind-bench-"))
     m = args.channels
     try:
