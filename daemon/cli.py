@@ -43,8 +43,11 @@ def _socket_path(args: argparse.Namespace) -> Path:
 
 def cmd_run(args: argparse.Namespace) -> int:
     from straind.logs import setup_logging
+    from straind.memory import tune_allocator
     from straind.service import run_service
     log = setup_logging(args.log_level)
+    if tune_allocator():
+        log.debug("allocator: heap top pad kept for block-sized arrays")
     cfg = _load(args.config)
     if args.config is None:
         log.info("no -c given: running the built-in demo (simulated bridge), storage %s",

@@ -180,6 +180,7 @@ class Outbox:
         self._last_sync = time.monotonic()
         self._bg: threading.Thread | None = None
         self._unsynced_fds: list[int] = []     # rolled segments not yet fsynced
+        self._dir_dirty = False                # a segment was created since the last sync
         self._state_lock = threading.Lock()
         self._state_gen = 0
         self._state_written_gen = 0
@@ -366,7 +367,7 @@ class Outbox:
             head = _pack_header(rec, seq, t_ns, topic_b, body, qos, retain)
             size = len(head) + len(body)
             seg = self._writer(size)
-            self._write_record(seg, head + body)
+            self._write_record(seg, head, body)
             if self.cache_bytes:
                 self._cache[(seg.path, seg.size)] = (
                     OutboxRecord(rec, seq, t_ns, topic, body, qos, bool(retain)), size)
@@ -392,19 +393,24 @@ class Outbox:
                     self.log.warning("outbox %s: size bound not enforced (%s)", self.path, exc)
             return rec, seq
 
-    def _write_record(self, seg: _Segment, data: bytes) -> None:
-        """Write one whole record at the end of the open segment, or raise OSError with the
-        file as it was (a part written before the error is cut off again)."""
-        view = memoryview(data)
-        done = 0
+    def _write_record(self, seg: _Segment, head: bytes, body: bytes) -> None:
+        """Write one whole record (header, then payload) at the end of the open segment, or
+        raise OSError with the file as it was (a part written before the error is cut off
+        again). Two writes rather than one of a joined copy: a payload is up to a few hundred
+        kB, and a record torn between the writes is what the scan at open already handles."""
+        written = 0
         try:
-            while done < len(data):
-                n = self._wfile.write(view[done:])
-                if not n:
-                    raise OSError(errno.EIO, "short write to the outbox")
-                done += n
+            for part in (head, body):
+                view = memoryview(part)
+                done = 0
+                while done < len(part):
+                    n = self._wfile.write(view[done:])
+                    if not n:
+                        raise OSError(errno.EIO, "short write to the outbox")
+                    done += n
+                    written += n
         except OSError:
-            if done:
+            if written:
                 self._cut_partial(seg)
             raise
 
@@ -485,7 +491,7 @@ class Outbox:
                 self._segments.append(seg)
             self._wfile = open(seg.path, "ab", buffering=0)
             self._wseg = seg
-            self._fsync_dir()
+            self._dir_dirty = True        # the new name is made durable by the next sync
         return seg
 
     def _roll(self) -> None:
@@ -700,6 +706,12 @@ class Outbox:
         self._last_sync = time.monotonic()
         doomed, self._doomed = self._doomed, []
         fds, self._unsynced_fds = self._unsynced_fds, []
+        if self._dir_dirty:
+            try:
+                fds.append(os.open(self.path, os.O_RDONLY))   # the directory: new names
+                self._dir_dirty = False
+            except OSError:
+                pass                                           # tried again at the next sync
         if self._wfile is not None and self._data_dirty:
             fds.append(os.dup(self._wfile.fileno()))
         self._data_dirty = False

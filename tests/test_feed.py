@@ -162,6 +162,15 @@ def test_batch_codec_roundtrip_and_rejects_garbage():
     assert struct.unpack_from("<H", msg, 6)[0] == 52
     assert struct.unpack_from("<IHHI", msg, 40) == (4, 3, 0, 0xDEADBEEF)
     assert struct.unpack_from("<d", msg, 52 + 8 * 4)[0] == vals[1, 1]
+    assert msg[52 + 12 * 8 + 5] == int(Quality.SATURATED)      # quality row-major after values
+    # float32 without quality: 4-byte little-endian IEEE 754 values, nothing after them
+    msg32 = encode_batch(8, T0_NS, 1_000_000, 46, vals, None, "float32")
+    assert len(msg32) == 52 + 12 * 4 and msg32[5] == 0
+    assert struct.unpack_from("<12f", msg32, 52)[4] == np.float32(vals[1, 1])
+    assert np.isnan(struct.unpack_from("<f", msg32, 52 + 4 * 5)[0])
+    b32 = decode_batch(msg32)
+    assert b32.quality is None
+    np.testing.assert_array_equal(b32.values, vals.astype(np.float32))
     with pytest.raises(ValueError):
         decode_batch(b"SDFX" + msg[4:])
     with pytest.raises(ValueError):

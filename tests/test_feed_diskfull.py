@@ -260,10 +260,10 @@ def test_read_only_outbox_bounded_memory_drops_oldest_and_announces(
     real_write = Outbox._write_record
     real_check = Outbox.check_writable
 
-    def write_record(self, seg, data):
+    def write_record(self, seg, head, body):
         if readonly["on"]:
             raise OSError(errno.EROFS, os.strerror(errno.EROFS))
-        return real_write(self, seg, data)
+        return real_write(self, seg, head, body)
 
     def check_writable(self):
         if readonly["on"]:

@@ -10,6 +10,8 @@ lossless subscriber) and a subscriber process, then runs, in one go:
             plus the per-channel value messages), blocks submitted when their last sample is due;
             latency = arrival - time of the newest (and of the oldest) sample in the batch
   rt-paho   the same payloads at the same pace published by a bare paho client (QoS 1)
+  warm-up   a throwaway flat-out burst by a bare paho client (the first burst after start-up
+            runs slow whoever sends it; not reported)
   max-feed  as fast as possible through `Feed` (backpressure on its queue; summary interval
             of an hour, so only the batch path is measured)
   max-paho  the same payloads as fast as possible by a bare paho client with the same
@@ -94,7 +96,8 @@ def subscriber_main(port: int) -> int:
         if parts[1] == "ctl":
             with lock:
                 ph = phases.setdefault(parts[3], _new_phase())
-                ph["expected"] = int(msg.payload)
+                count, start_ns = msg.payload.split()
+                ph["expected"], ph["start_ns"] = int(count), int(start_ns)
                 lock.notify_all()
             return
         if "full" not in parts:
@@ -148,7 +151,7 @@ def subscriber_main(port: int) -> int:
 
 
 def _new_phase() -> dict:
-    return {"expected": None, "seen": set(), "arrivals": [], "lat_newest": [], "lat_oldest": [],
+    return {"expected": None, "start_ns": None, "seen": set(), "arrivals": [], "lat_newest": [], "lat_oldest": [],
             "rows": 0, "values": 0, "bytes": 0, "dups": 0, "values_msgs": 0}
 
 
@@ -157,14 +160,18 @@ def _summary(name: str, ph: dict) -> dict:
     n = len(seen)
     expected = ph["expected"] if ph["expected"] is not None else n
     arr = np.array(ph["arrivals"], dtype=np.int64)
-    span = (arr.max() - arr.min()) / 1e9 if n > 1 else float("nan")
+    # delivered rate: messages over the time from the first send to the last arrival (an
+    # arrival-to-arrival span would flatter a sender that buffers before it starts sending)
+    start = ph["start_ns"] if ph["start_ns"] is not None else (arr.min() if n else 0)
+    span = (arr.max() - start) / 1e9 if n > 1 else float("nan")
     out = {"phase": name, "expected": expected, "received": n,
            "lost": expected - len([s for s in seen if s < expected]),
            "duplicates": ph["dups"], "value_messages": ph["values_msgs"],
-           "msgs_per_s": (n - 1) / span if n > 1 else None,
-           "rows_per_s": ph["rows"] * (n - 1) / n / span if n > 1 else None,
-           "values_per_s": ph["values"] * (n - 1) / n / span if n > 1 else None,
-           "mb_per_s": ph["bytes"] * (n - 1) / n / span / 1e6 if n > 1 else None}
+           "msgs_per_s": n / span if n > 1 else None,
+           "rows_per_s": ph["rows"] / span if n > 1 else None,
+           "values_per_s": ph["values"] / span if n > 1 else None,
+           "mb_per_s": ph["bytes"] / span / 1e6 if n > 1 else None,
+           "first_arrival_after_ms": (arr.min() - start) / 1e6 if n else None}
     for key in ("lat_newest", "lat_oldest"):
         if ph[key]:
             lat = np.array(ph[key], dtype=np.float64) / 1e6
@@ -319,7 +326,7 @@ def run_feed_phase(name, port, layout, block, count, values, quality, pace, work
             print(f"{name}: block {i} refused", file=sys.stderr)
     feed.stop(timeout_s=60)
     st = feed.status()
-    ctl.publish(f"bench/ctl/end/{name}", str(count), qos=1).wait_for_publish(10)
+    ctl.publish(f"bench/ctl/end/{name}", f"{count} {start}", qos=1).wait_for_publish(10)
     return {"outbox_left": st["outbox"]["depth"], "dropped": st["dropped"]}
 
 
@@ -333,7 +340,7 @@ def run_paho_phase(name, port, layout, block, count, values, quality, pace, ctl)
         pub.publish(topic, encode_batch(i, t0, layout.period_ns, idx, values, quality, "float32",
                                         0, body=body))
     pub.close()
-    ctl.publish(f"bench/ctl/end/{name}", str(count), qos=1).wait_for_publish(10)
+    ctl.publish(f"bench/ctl/end/{name}", f"{count} {start}", qos=1).wait_for_publish(10)
     return {}
 
 
@@ -346,7 +353,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--max-blocks", type=int, default=2000, help="blocks in the flat-out phases")
     ap.add_argument("--json", action="store_true", help="print the results as JSON")
     ap.add_argument("--subscriber", type=int, help=argparse.SUPPRESS)
+    ap.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
+                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
+                         "default: glibc as it comes, to see the difference")
     a = ap.parse_args(argv)
+    if a.allocator == "tuned":
+        from straind.memory import tune_allocator
+        tune_allocator()
     if a.subscriber:
         return subscriber_main(a.subscriber)
 
@@ -383,6 +396,11 @@ def main(argv: list[str] | None = None) -> int:
                                           quality, True, workdir, ctl))
         collect("rt-paho", run_paho_phase("rt-paho", port, layout, a.block, rt_blocks, values,
                                           quality, True, ctl))
+        # the first flat-out burst after start-up runs at about half speed whoever sends it
+        # (the broker and the subscriber grow their buffers): a throwaway burst goes first
+        collect("warm-up", run_paho_phase("warm-up", port, layout, a.block,
+                                          max(20, a.max_blocks // 4), values, quality, False,
+                                          ctl))
         collect("max-feed", run_feed_phase("max-feed", port, layout, a.block, a.max_blocks,
                                            values, quality, False, workdir, ctl))
         collect("max-paho", run_paho_phase("max-paho", port, layout, a.block, a.max_blocks,

@@ -179,7 +179,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--derived", action="store_true",
                     help="with --corrections: also derived columns (rosette with stresses, "
                          "uniaxial stress, creep rate per sample)")
+    ap.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
+                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
+                         "default: glibc as it comes, to see the difference")
     args = ap.parse_args(argv)
+    if args.allocator == "tuned":
+        from straind.memory import tune_allocator
+        tune_allocator()
     if args.derived and args.channels < 6:
         ap.error("--derived needs --channels 6 or more (a rosette on c01-c03, stress on c04, "
                  "creep on c05)")

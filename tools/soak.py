@@ -213,7 +213,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--keep", action="store_true", help="keep the temporary directory")
     p.add_argument("--log-level", default="warning")
     p.add_argument("--json", action="store_true", help="print one JSON document")
+    p.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
+                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
+                         "default: glibc as it comes, to see the difference")
     args = p.parse_args(argv)
+    if args.allocator == "tuned":
+        from straind.memory import tune_allocator
+        tune_allocator()
     report = run(args)
     if args.json:
         print(json.dumps(report))
