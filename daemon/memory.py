@@ -11,8 +11,10 @@ price of up to the pad in resident memory. Other C libraries are left alone.
 
 from __future__ import annotations
 
+import argparse
 import ctypes
 import ctypes.util
+import functools
 import os
 
 #: mallopt parameter number of M_TOP_PAD in glibc's <malloc.h>
@@ -21,20 +23,39 @@ _M_TOP_PAD = -2
 DEFAULT_TOP_PAD_BYTES = 16 << 20
 
 
+@functools.cache
+def glibc() -> ctypes.CDLL | None:
+    """The process's C library if it is glibc (loaded once), else None."""
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        libc.gnu_get_libc_version  # only glibc has it (and mallopt's M_TOP_PAD meaning)
+    except (OSError, AttributeError):
+        return None
+    return libc
+
+
 def tune_allocator(top_pad_bytes: int = DEFAULT_TOP_PAD_BYTES) -> bool:
     """Ask glibc to keep `top_pad_bytes` free at the top of the heap; True if it was applied.
 
     Does nothing (False) on another C library, or when the operator already chose a value
     through glibc's own MALLOC_TOP_PAD_ environment variable.
     """
-    if "MALLOC_TOP_PAD_" in os.environ:
+    libc = glibc()
+    if "MALLOC_TOP_PAD_" in os.environ or libc is None:
         return False
-    try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        mallopt = libc.mallopt
-        libc.gnu_get_libc_version  # only glibc has it (and the meaning of M_TOP_PAD above)
-    except (OSError, AttributeError):
-        return False
+    mallopt = libc.mallopt
     mallopt.argtypes = (ctypes.c_int, ctypes.c_int)
     mallopt.restype = ctypes.c_int
     return mallopt(_M_TOP_PAD, int(top_pad_bytes)) == 1
+
+
+def add_allocator_argument(parser: argparse.ArgumentParser) -> None:
+    """The `--allocator` option of the tools/ benchmarks, to measure with or without the pad."""
+    parser.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
+                        help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
+                             "default: glibc as it comes, to see the difference")
+
+
+def apply_allocator_argument(args: argparse.Namespace) -> bool:
+    """Tune the allocator unless `--allocator default` was given; True if it was tuned."""
+    return args.allocator == "tuned" and tune_allocator()

@@ -151,8 +151,8 @@ def subscriber_main(port: int) -> int:
 
 
 def _new_phase() -> dict:
-    return {"expected": None, "start_ns": None, "seen": set(), "arrivals": [], "lat_newest": [], "lat_oldest": [],
-            "rows": 0, "values": 0, "bytes": 0, "dups": 0, "values_msgs": 0}
+    return {"expected": None, "start_ns": None, "seen": set(), "arrivals": [], "lat_newest": [],
+            "lat_oldest": [], "rows": 0, "values": 0, "bytes": 0, "dups": 0, "values_msgs": 0}
 
 
 def _summary(name: str, ph: dict) -> dict:
@@ -345,6 +345,7 @@ def run_paho_phase(name, port, layout, block, count, values, quality, pace, ctl)
 
 
 def main(argv: list[str] | None = None) -> int:
+    from straind.memory import add_allocator_argument, apply_allocator_argument
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--channels", type=int, default=32)
     ap.add_argument("--rate", type=float, default=10_000.0, help="samples per second per channel")
@@ -353,13 +354,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--max-blocks", type=int, default=2000, help="blocks in the flat-out phases")
     ap.add_argument("--json", action="store_true", help="print the results as JSON")
     ap.add_argument("--subscriber", type=int, help=argparse.SUPPRESS)
-    ap.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
-                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
-                         "default: glibc as it comes, to see the difference")
+    add_allocator_argument(ap)
     a = ap.parse_args(argv)
-    if a.allocator == "tuned":
-        from straind.memory import tune_allocator
-        tune_allocator()
+    apply_allocator_argument(a)
     if a.subscriber:
         return subscriber_main(a.subscriber)
 

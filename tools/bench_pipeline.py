@@ -25,6 +25,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from straind.memory import add_allocator_argument, apply_allocator_argument
 from straind.chain import DeviceChain
 from straind.config import load_config_text
 from straind.drivers.simulated import SimulatedBridge
@@ -126,12 +127,11 @@ def _pipeline(cfg_text: str, seconds: float | None, blocks: list | None, path: P
 
 
 def _submit_waiting(store: Store, eng) -> None:
-    """Flat out the producer outruns the writer: wait for room in the write queue (back
-    pressure) instead of letting the store refuse the block and log a drop."""
-    need = eng.values.nbytes + eng.quality.nbytes + eng.raw.data.nbytes + eng.raw.quality.nbytes
+    """Flat out the producer outruns the writer: wait while the write queue is over half full
+    (back pressure) instead of letting the store refuse blocks and log drops."""
     while True:
         st = store.status()
-        if st["queue_bytes"] + need + 64 <= st["queue_limit_bytes"] and store.submit(eng):
+        if st["queue_bytes"] <= st["queue_limit_bytes"] // 2 and store.submit(eng):
             return
         time.sleep(0.001)
 
@@ -179,13 +179,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--derived", action="store_true",
                     help="with --corrections: also derived columns (rosette with stresses, "
                          "uniaxial stress, creep rate per sample)")
-    ap.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
-                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
-                         "default: glibc as it comes, to see the difference")
+    add_allocator_argument(ap)
     args = ap.parse_args(argv)
-    if args.allocator == "tuned":
-        from straind.memory import tune_allocator
-        tune_allocator()
+    apply_allocator_argument(args)
     if args.derived and args.channels < 6:
         ap.error("--derived needs --channels 6 or more (a rosette on c01-c03, stress on c04, "
                  "creep on c05)")

@@ -26,8 +26,6 @@ periodic.
 from __future__ import annotations
 
 import argparse
-import ctypes
-import ctypes.util
 import json
 import os
 import shutil
@@ -41,19 +39,13 @@ import numpy as np
 import yaml
 
 
-_libc = None
-
-
 def trim_heap() -> None:
     """Give freed heap memory back to the kernel (glibc malloc_trim) before RSS is read, so RSS
     follows live memory rather than the high-water mark of the store's queue."""
-    global _libc
-    try:
-        if _libc is None:
-            _libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        _libc.malloc_trim(0)
-    except (OSError, AttributeError):
-        pass
+    from straind.memory import glibc
+    libc = glibc()
+    if libc is not None:
+        libc.malloc_trim(0)
 
 
 def rss_kb() -> int:
@@ -194,6 +186,7 @@ def run(args: argparse.Namespace) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from straind.memory import add_allocator_argument, apply_allocator_argument
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     p.add_argument("--days", type=float, default=7.0, help="sample time to run (days)")
     p.add_argument("--channels", type=int, default=16)
@@ -213,13 +206,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--keep", action="store_true", help="keep the temporary directory")
     p.add_argument("--log-level", default="warning")
     p.add_argument("--json", action="store_true", help="print one JSON document")
-    p.add_argument("--allocator", choices=("tuned", "default"), default="tuned",
-                    help="tuned (as `straind run`): keep a heap-top pad (straind.memory); "
-                         "default: glibc as it comes, to see the difference")
+    add_allocator_argument(p)
     args = p.parse_args(argv)
-    if args.allocator == "tuned":
-        from straind.memory import tune_allocator
-        tune_allocator()
+    apply_allocator_argument(args)
     report = run(args)
     if args.json:
         print(json.dumps(report))
