@@ -67,7 +67,8 @@ def test_append_on_a_full_disk_keeps_the_log_whole_and_works_again(tmp_path, mon
     cuts = []
     real_cut = Outbox._cut_partial
     monkeypatch.setattr(Outbox, "_cut_partial",
-                        lambda self, seg: (cuts.append(seg.size), real_cut(self, seg)))
+                        lambda self, seg, written: (cuts.append(seg.size),
+                                                    real_cut(self, seg, written)))
     with small_disk(tmp_path / "disk") as disk:
         path = os.path.join(disk, "outbox")
         ob = Outbox(path, max_bytes=64 << 20, sync_interval_s=0.0)

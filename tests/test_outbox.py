@@ -263,3 +263,141 @@ def test_oldest_unacked_time_and_closed_outbox(tmp_path):
     ob.close()
     with pytest.raises(ValueError):
         ob.append("t", b"3")
+
+
+# ------------------------------------------------------------------- checks and segment reuse
+
+def test_record_checks_match_published_values():
+    from straind.outbox import MAGIC_CRC32, MAGIC_CRC32C, record_crc
+    # CRC-32C examples of RFC 3720 (iSCSI), appendix B.4, there given as the CRC's bytes in
+    # transmission order (aa 36 91 8a for 32 zero bytes, and so on)
+    assert record_crc(MAGIC_CRC32C, bytes(32)) == 0x8A9136AA
+    assert record_crc(MAGIC_CRC32C, b"\xff" * 32) == 0x62A8AB43
+    assert record_crc(MAGIC_CRC32C, bytes(range(32))) == 0x46DD794E
+    assert record_crc(MAGIC_CRC32C, bytes(range(31, -1, -1))) == 0x113FDB5C
+    # parts chain like one buffer
+    assert record_crc(MAGIC_CRC32C, bytes(range(10)), bytes(range(10, 32))) == 0x46DD794E
+    # CRC-32 (zlib's, ISO-HDLC): the usual check value of the ASCII digits 1-9 (common practice:
+    # every CRC catalogue lists it)
+    assert record_crc(MAGIC_CRC32, b"123456789") == 0xCBF43926
+    assert record_crc(MAGIC_CRC32, b"1234", b"56789") == 0xCBF43926
+
+
+def test_records_with_the_older_crc32_check_are_read_back(tmp_path, monkeypatch):
+    import straind.outbox as outbox_mod
+    path = str(tmp_path / "ob")
+    monkeypatch.setattr(outbox_mod, "MAGIC", outbox_mod.MAGIC_CRC32)
+    ob = Outbox(path)
+    old = fill(ob, 20)
+    ob.close()
+    monkeypatch.undo()
+    assert open(_segments(path)[0], "rb").read(4) == b"SOBX"
+    ob2 = Outbox(path)
+    assert ob2.corrupt == 0
+    new = fill(ob2, 5)
+    ob2.close()
+    ob3 = Outbox(path)                  # both kinds in one segment
+    got = drain(ob3)
+    assert [(g.rec, g.topic, g.seq, g.payload) for g in got] == old + new
+    assert ob3.corrupt == 0
+    ob3.close()
+
+
+def _spares(path: str) -> list[str]:
+    return sorted(os.path.join(path, n) for n in os.listdir(path) if n.endswith(".spare"))
+
+
+def test_emptied_segments_are_reused_and_their_stale_records_never_return(tmp_path):
+    path = str(tmp_path / "ob")
+    ob = Outbox(path, segment_bytes=1024, max_bytes=1 << 20)
+    fill(ob, 60)                         # records of 43..123 bytes: several segments
+    assert len(_segments(path)) > 3
+    drain(ob)                            # everything acknowledged
+    ob.sync()                            # ... and on record: the segments become spares
+    spares = _spares(path)
+    assert spares and len(_segments(path)) == 1
+    inodes = {os.stat(p).st_ino for p in spares}
+    written = fill(ob, 40)
+    reused = [p for p in _segments(path) if os.stat(p).st_ino in inodes]
+    assert reused, "a new segment should be a spare renamed"
+    # the stale bytes past the new records are still there (written over, not cut)
+    ob.close()
+    assert any(os.path.getsize(p) > 0 for p in reused)
+    ob2 = Outbox(path)
+    assert ob2.corrupt == 0
+    got = drain(ob2, ack=False)
+    assert [(g.rec, g.topic, g.seq, g.payload) for g in got] == written
+    ob2.close()
+
+
+def _reused_segment_with_a_short_tail(path: str) -> tuple[list, str, int]:
+    """An outbox whose open segment is a reused file; returns (records written since the
+    reuse began, that segment's path, the end of its last record)."""
+    ob = Outbox(path, segment_bytes=1024, max_bytes=1 << 20)
+    fill(ob, 60)
+    drain(ob)
+    ob.sync()
+    spare_inodes = {os.stat(p).st_ino for p in _spares(path)}
+    while True:
+        written = fill(ob, 1)
+        if os.stat(ob._wseg.path).st_ino in spare_inodes:
+            break
+        drain(ob)                       # the records before the reused segment are acked
+    written += fill(ob, 2)
+    seg, end = ob._wseg.path, ob._wseg.size
+    ob.close()
+    return written, seg, end
+
+
+def test_record_cut_short_over_stale_records_is_discarded(tmp_path):
+    path = str(tmp_path / "ob")
+    written, seg, end = _reused_segment_with_a_short_tail(path)
+    data = bytearray(open(seg, "rb").read())
+    assert len(data) > end + 200, "stale bytes should follow the records"
+    # a kill cut the next record short over the stale bytes: a copy of the last record,
+    # renumbered as the next, of which only the first half reached the file
+    last_len = len(written[-1][3]) + RECORD_HEADER.size + len(written[-1][1])
+    torn = bytearray(data[end - last_len:end])
+    assert RECORD_HEADER.unpack_from(torn, 0)[3] == written[-1][0]
+    torn[12:20] = (written[-1][0] + 1).to_bytes(8, "little")
+    data[end:end + last_len // 2] = torn[:last_len // 2]
+    open(seg, "r+b").write(bytes(data))
+    ob2 = Outbox(path)
+    assert ob2.corrupt == 1             # worth a word: a record of this segment, cut short
+    got = drain(ob2, ack=False)
+    assert [(g.rec, g.payload) for g in got] == [(w[0], w[3]) for w in written]
+    rec, _ = ob2.append("b", b"after the cut")      # appends go on over the cut
+    ob2.close()
+    ob3 = Outbox(path)
+    got = drain(ob3, ack=False)
+    assert [(g.rec, g.payload) for g in got][-1] == (rec, b"after the cut")
+    assert len(got) == len(written) + 1 and ob3.corrupt == 1
+    ob3.close()
+
+
+def test_stale_records_after_a_clean_close_are_not_damage(tmp_path):
+    path = str(tmp_path / "ob")
+    written, seg, end = _reused_segment_with_a_short_tail(path)
+    ob = Outbox(path)
+    assert ob.corrupt == 0
+    assert [(g.rec, g.payload) for g in drain(ob, ack=False)] == [(w[0], w[3]) for w in written]
+    ob.close()
+
+
+def test_spares_are_given_up_before_unsent_records(tmp_path):
+    path = str(tmp_path / "ob")
+    ob = Outbox(path, segment_bytes=4096, max_bytes=32 * 1024)
+    fill(ob, 120)
+    drain(ob)
+    ob.sync()
+    assert _spares(path)
+    dropped_before = ob.dropped
+    # fill to the bound with unsent records: the spares go first, then the oldest records
+    for i in range(200):
+        ob.append("z", i.to_bytes(4, "little") + b"." * 200)
+        assert ob.bytes + ob.stats()["spare_bytes"] <= 32 * 1024 + 4096
+    assert ob.stats()["spare_bytes"] == 0
+    assert ob.dropped > dropped_before
+    ob.sync()
+    assert not _spares(path)
+    ob.close()

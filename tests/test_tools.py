@@ -47,13 +47,14 @@ def test_bench_feed_short() -> None:
     assert r.returncode == 0, r.stderr
     rep = json.loads(r.stdout)
     phases = {p["phase"]: p for p in rep["results"]}
-    assert set(phases) == {"outbox", "rt-feed", "rt-paho", "warm-up", "max-feed", "max-paho"}
-    for name in ("rt-feed", "rt-paho", "warm-up", "max-feed", "max-paho"):
+    assert set(phases) == {"outbox", "rt-feed", "rt-paho", "warm-up", "max-feed-cold",
+                           "max-feed", "max-paho"}
+    for name in ("rt-feed", "rt-paho", "warm-up", "max-feed-cold", "max-feed", "max-paho"):
         p = phases[name]
         assert p["received"] == p["expected"] > 0 and p["lost"] == 0 and p["duplicates"] == 0, p
     assert phases["rt-feed"]["outbox_left"] == 0
     assert not any(phases["max-feed"]["dropped"].values()), phases["max-feed"]["dropped"]
-    assert rep["feed_over_paho"] > 0
+    assert rep["feed_over_paho"] > 0 and rep["cold_feed_over_paho"] > 0
 
 
 def test_bench_serial_short() -> None:
