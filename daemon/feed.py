@@ -45,7 +45,7 @@ import struct
 import threading
 import time
 import zlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
@@ -72,6 +72,7 @@ __all__ = [
     "FeedTopics",
     "IntervalStats",
     "summarise",
+    "merge_stats",
     "BATCH_MAGIC",
     "BATCH_VERSION",
     "BATCH_HEADER",
@@ -89,6 +90,8 @@ __all__ = [
 EXCLUDE_FROM_STATS = int(UNUSABLE | Quality.SHUNT_ON)
 #: submitted blocks the feed thread takes per step before it sends what is ready
 INPUTS_PER_STEP = 16
+#: a device's parts of one interval are folded together at its end or once this many wait
+MERGE_EVERY = 32
 
 # --------------------------------------------------------------------------------------- schema
 
@@ -257,19 +260,62 @@ class IntervalStats:
     first_ns: int
     end_ns: int       # time of the last sample seen (usable or not)
 
-    def merge(self, later: "IntervalStats") -> None:
-        """Fold in the statistics of later samples of the same interval."""
-        self.count = self.count + later.count
-        self.total = self.total + later.total
-        self.vmin = np.minimum(self.vmin, later.vmin)
-        self.vmax = np.maximum(self.vmax, later.vmax)
-        newer = later.count > 0
-        self.last = np.where(newer, later.last, self.last)
-        self.last_ns = np.where(newer, later.last_ns, self.last_ns)
-        self.unusable = self.unusable + later.unusable
-        self.flags = self.flags | later.flags
-        self.first_ns = min(self.first_ns, later.first_ns)
-        self.end_ns = max(self.end_ns, later.end_ns)
+
+
+def merge_stats(parts: Sequence[IntervalStats]) -> IntervalStats:
+    """The statistics of consecutive parts of one interval, as if taken over all their samples.
+
+    One stacked reduction per field for the lot (the feed folds a device's parts once per
+    interval, or every MERGE_EVERY parts, rather than a dozen small operations per block). The
+    sums add part by part in order, as a running total would.
+    """
+    if len(parts) == 1:
+        return parts[0]
+    count = np.stack([p.count for p in parts])
+    has = count > 0
+    # per column, the last part that had a usable sample (argmax finds the first True)
+    latest = (len(parts) - 1) - has[::-1].argmax(axis=0)
+    cols = np.arange(count.shape[1])
+    any_usable = has.any(axis=0)
+    last = np.where(any_usable, np.stack([p.last for p in parts])[latest, cols], parts[0].last)
+    last_ns = np.where(any_usable, np.stack([p.last_ns for p in parts])[latest, cols],
+                       parts[0].last_ns)
+    return IntervalStats(parts[0].index, count.sum(axis=0),
+                         np.stack([p.total for p in parts]).sum(axis=0),
+                         np.stack([p.vmin for p in parts]).min(axis=0),
+                         np.stack([p.vmax for p in parts]).max(axis=0),
+                         last, last_ns.astype(np.int64),
+                         np.stack([p.unusable for p in parts]).sum(axis=0),
+                         np.bitwise_or.reduce(np.stack([p.flags for p in parts]), axis=0),
+                         min(p.first_ns for p in parts), max(p.end_ns for p in parts))
+
+
+#: rows laid side by side in _column_sum_min_max (8 to 50 all gain; 40 did best on 1000 rows)
+_FOLD_ROWS = 40
+
+
+def _column_sum_min_max(values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-column sum, min and max of an (n, k) array.
+
+    numpy reduces over axis 0 of a row-major array one short row at a time; seen as
+    (n / F, F k) the rows are F times longer, and the F partial results per column are folded
+    at the end (28-35 us against 43 for a transposed copy and three row reductions, on a 32 x
+    1000 block). The sum adds in another order than `values.sum(axis=0)`: equal to rounding.
+    """
+    n, k = values.shape
+    m = n - n % _FOLD_ROWS
+    if m == 0:
+        return values.sum(axis=0), values.min(axis=0), values.max(axis=0)
+    wide = values[:m].reshape(m // _FOLD_ROWS, _FOLD_ROWS * k)
+    total = wide.sum(axis=0).reshape(_FOLD_ROWS, k).sum(axis=0)
+    vmin = wide.min(axis=0).reshape(_FOLD_ROWS, k).min(axis=0)
+    vmax = wide.max(axis=0).reshape(_FOLD_ROWS, k).max(axis=0)
+    if m < n:
+        rest = values[m:]
+        total += rest.sum(axis=0)
+        np.minimum(vmin, rest.min(axis=0), out=vmin)
+        np.maximum(vmax, rest.max(axis=0), out=vmax)
+    return total, vmin, vmax
 
 
 def _stats(values: np.ndarray, quality: np.ndarray, t0_ns: int, period_ns: int,
@@ -278,15 +324,13 @@ def _stats(values: np.ndarray, quality: np.ndarray, t0_ns: int, period_ns: int,
     flags = (np.bitwise_or.reduce(quality, axis=0).astype(np.uint8) if n and quality.any()
              else np.zeros(k, np.uint8))
     if n and not (flags & EXCLUDE_FROM_STATS).any():
-        # the usual case, every sample usable: a few passes over a channel-major copy (numpy
-        # reduces the long contiguous rows much faster than the short axis-0 columns). A sum
-        # is finite only if every term is (NaN and inf propagate), so the finite sums stand in
-        # for a separate pass of isfinite; an overflow to inf just takes the general path.
-        vt = np.ascontiguousarray(values.T)
-        total = vt.sum(axis=1)
+        # the usual case, every sample usable: three column reductions (_column_sum_min_max).
+        # A sum is finite only if every term is (NaN and inf propagate), so the finite sums
+        # stand in for a separate pass of isfinite; an overflow to inf takes the general path.
+        total, vmin, vmax = _column_sum_min_max(values)
         if np.isfinite(total).all():
             return IntervalStats(index, np.full(k, n, np.int64), total,
-                                 vt.min(axis=1), vt.max(axis=1), values[-1].copy(),
+                                 vmin, vmax, values[-1].copy(),
                                  np.full(k, t0_ns + (n - 1) * period_ns, np.int64),
                                  np.zeros(k, np.int64), flags, t0_ns, t0_ns + (n - 1) * period_ns)
     bad = (quality & EXCLUDE_FROM_STATS) != 0
@@ -546,6 +590,7 @@ class _DeviceState:
     names: tuple[str, ...] = ()
     units: tuple[str, ...] = ()
     acc: IntervalStats | None = None
+    acc_more: list = field(default_factory=list)   # later parts of acc's interval, unfolded
     last_input_mono: float = 0.0
     batch: list | None = None          # [(values, quality, start_index, t0_ns)]
     batch_rows: int = 0
@@ -1073,7 +1118,10 @@ class Feed:
                 if st.acc is None:
                     st.acc = part
                 elif part.index == st.acc.index:
-                    st.acc.merge(part)
+                    st.acc_more.append(part)
+                    if len(st.acc_more) >= MERGE_EVERY:
+                        st.acc = merge_stats([st.acc, *st.acc_more])
+                        st.acc_more = []
                 else:
                     self._emit_values(st)
                     st.acc = part
@@ -1271,8 +1319,11 @@ class Feed:
 
     def _emit_values(self, st: _DeviceState) -> None:
         acc, st.acc = st.acc, None
+        more, st.acc_more = st.acc_more, []
         if acc is None:
             return
+        if more:
+            acc = merge_stats([acc, *more])
         start_ns = acc.index * self._interval_ns
         end_ns = start_ns + self._interval_ns
         layout = {c.name: c for c in st.layout.channels} if st.layout else {}

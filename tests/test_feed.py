@@ -186,6 +186,51 @@ def test_summarise_splits_at_interval_boundaries():
     assert [float(p.last[0]) for p in parts] == [2.0, 7.0, 9.0]
 
 
+@pytest.mark.parametrize("n", [1, 7, 39, 40, 41, 1000, 1013])
+def test_column_reductions_equal_numpy_along_the_columns(n):
+    from straind.feed import _column_sum_min_max
+    values = np.random.default_rng(n).normal(0.0, 1e3, size=(n, 5))
+    total, vmin, vmax = _column_sum_min_max(values)
+    # numpy's own reductions along axis 0 are the reference; the sum only to rounding
+    np.testing.assert_allclose(total, values.sum(axis=0), rtol=1e-12, atol=1e-9)
+    np.testing.assert_array_equal(vmin, values.min(axis=0))
+    np.testing.assert_array_equal(vmax, values.max(axis=0))
+
+
+def test_merged_parts_equal_the_statistics_of_all_their_samples():
+    from straind.feed import EXCLUDE_FROM_STATS, merge_stats
+    rng = np.random.default_rng(11)
+    n, k, period = 400, 4, 10
+    values = rng.normal(0.0, 50.0, size=(n, k))
+    quality = np.zeros((n, k), np.uint8)
+    values[rng.integers(0, n, 30), 0] = np.nan            # scattered unusable samples
+    quality[rng.integers(0, n, 20), 1] = int(UNUSABLE)
+    values[150:, 2] = np.nan                                # no usable sample in later parts
+    values[:, 3] = np.nan                                   # never a usable sample
+    # the same interval cut into uneven blocks, summarised part by part, then merged
+    cuts = [0, 7, 60, 61, 200, 333, n]
+    parts = []
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        parts += summarise(values[a:b], quality[a:b], t0_ns=a * period, period_ns=period,
+                           interval_ns=10**12)
+    merged = merge_stats(parts)
+    # reference: each column's statistics taken directly over all its usable samples
+    good = np.isfinite(values) & ((quality & EXCLUDE_FROM_STATS) == 0)
+    times = np.arange(n) * period
+    for j in range(k):
+        g = good[:, j]
+        assert int(merged.count[j]) == g.sum() and int(merged.unusable[j]) == n - g.sum()
+        if g.any():
+            np.testing.assert_allclose(merged.total[j], values[g, j].sum(), rtol=1e-12)
+            assert merged.vmin[j] == values[g, j].min() and merged.vmax[j] == values[g, j].max()
+            assert merged.last[j] == values[g, j][-1]
+            assert merged.last_ns[j] == times[g][-1]
+        else:
+            assert np.isnan(merged.last[j]) and merged.last_ns[j] == -1
+    assert int(merged.flags[1]) == int(UNUSABLE) and int(merged.flags[0]) == 0
+    assert (merged.first_ns, merged.end_ns) == (0, (n - 1) * period)
+
+
 # ------------------------------------------------------------------------- against the broker
 
 def oracle(values: np.ndarray, quality: np.ndarray, interval_ns: int, period_ns: int):
