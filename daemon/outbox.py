@@ -28,10 +28,13 @@ lose nothing that reached the log. Design, chosen for speed:
   from byte 0.
   Writing over pages the OS already caches costs a fraction of growing a fresh file (on the
   development VM about 25 against 180-550 us for a 160 kB record), and overwriting blocks
-  that are already allocated cannot fail for want of space. What lies after the last record
-  written is stale: earlier records, all numbered below the segment's first record, where the
-  scan at open stops (neither damage nor data). Spares count towards ``max_bytes`` and are
-  the first thing given up when the bound is reached.
+  that are already allocated cannot fail for want of space. A reused file is cut after its
+  last record when it is rolled or closed, so only the open segment can end in stale bytes,
+  and only after a kill. The scan at open tells them from a record cut short: stale records are
+  numbered below the segment's first record (numbers only grow), and stale bytes do not start
+  with the header of the record expected there; either ends the segment's data, unreported as
+  damage. Spares count towards ``max_bytes`` and are the first thing given up when the bound
+  is reached.
 * Records are handed out strictly in order (`next_unsent`); acknowledgements may come in any
   order, the ack position advances over the contiguous acknowledged prefix.
 
@@ -209,6 +212,7 @@ class Outbox:
         self._spares: list[tuple[str, int]] = []     # (path, file bytes) ready for reuse
         self._spare_serial = 0
         self._spare_bytes = 0
+        self.segments_reused = 0              # new segments that were a spare (this process)
         self.log = log or logging.getLogger("straind.outbox")
         self._lock = threading.RLock()
         self._closed = False
@@ -270,6 +274,7 @@ class Outbox:
         self._reserved = {str(k): int(v) for k, v in state.get("reserved", {}).items()}
         self.dropped = int(state.get("dropped", 0))
         self.corrupt = int(state.get("corrupt", 0))
+        self._known_damage = set(map(str, state.get("damaged", [])))
         # unlogged streams restart at their reservation, never below a number already used
         for stream, upto in self._reserved.items():
             self._seq[stream] = max(self._seq.get(stream, 0), upto)
@@ -322,39 +327,33 @@ class Outbox:
             hit = _parse_at(buf, pos)
             if hit is None:
                 nxt = self._resync(buf, pos + 1)
-                if nxt is not None and _parse_at(buf, nxt)[1] < expect:
-                    # a reused file's stale older records follow: the data end here (the next
-                    # appends write over the rest). A header of the record expected here is
-                    # one cut short by a kill or a power loss, worth a word.
-                    if _torn_header(buf, pos, expect):
-                        self.log.warning("outbox %s: incomplete record at byte %d discarded",
-                                         path, pos)
-                        self.corrupt += 1
-                        self._state_dirty = True
-                    n = pos
+                if nxt is not None and _parse_at(buf, nxt)[1] >= expect:
+                    # damage with records of this segment after it: skip the bytes between
+                    self._damage(path, pos, f"damaged record at byte {pos}, {nxt - pos} bytes "
+                                            f"skipped")
+                    seg.skips[pos] = nxt
+                    pos = nxt
+                    continue
+                # nothing of this segment follows: its data end here
+                torn = _torn_header(buf, pos, expect)
+                if not is_last and not torn and nxt is None:
+                    # an earlier segment ends at its last record (a reused one is cut at the
+                    # roll), so bytes after it that are not stale records are damage
+                    self._damage(path, pos, f"damaged record at byte {pos}, {n - pos} bytes "
+                                            f"skipped")
+                    seg.skips[pos] = n
                     break
-                if nxt is None:
-                    if is_last:
-                        # torn tail from an interrupted write: cut it off so appends continue
-                        self.log.warning("outbox %s: damaged or incomplete record at byte %d "
-                                         "(%d bytes) discarded", path, pos, n - pos)
-                        with open(path, "r+b") as fh:
-                            fh.truncate(pos)
-                        n = pos
-                    else:
-                        self.log.warning("outbox %s: damaged record at byte %d, %d bytes "
-                                         "skipped", path, pos, n - pos)
-                        seg.skips[pos] = n
-                    self.corrupt += 1
-                    self._state_dirty = True
-                    break
-                self.log.warning("outbox %s: damaged record at byte %d, %d bytes skipped",
-                                 path, pos, nxt - pos)
-                seg.skips[pos] = nxt
-                self.corrupt += 1
-                self._state_dirty = True
-                pos = nxt
-                continue
+                if torn:
+                    # the record expected here, cut short by a kill or a power loss
+                    self._damage(path, pos, f"incomplete record at byte {pos} ({n - pos} bytes "
+                                            f"to the end of the file) discarded")
+                else:
+                    # the rest of a reused file (a kill came before it was cut)
+                    self.log.info("outbox %s: %d bytes after the last record (byte %d) are "
+                                  "not records of this segment; cut off", path, n - pos, pos)
+                self._cut_file(path, pos)
+                n = pos
+                break
             length, rec, seq, time_ns, topic_len, flags, _ = hit
             if rec < expect:
                 # numbered below what this segment holds: a reused file's stale older records
@@ -375,6 +374,25 @@ class Outbox:
         seg.size = n
         self._unacked += unacked
         return seg
+
+    def _damage(self, path: str, pos: int, what: str) -> None:
+        """Count and report a damaged region found by the scan, once: a region that stays in
+        the file (skipped, or left when a cut fails) is remembered in the state file."""
+        key = f"{os.path.basename(path)}:{pos}"
+        if key in self._known_damage:
+            self.log.debug("outbox %s: %s (known)", path, what)
+            return
+        self._known_damage.add(key)
+        self.log.warning("outbox %s: %s", path, what)
+        self.corrupt += 1
+        self._state_dirty = True
+
+    def _cut_file(self, path: str, size: int) -> None:
+        try:
+            with open(path, "r+b") as fh:
+                fh.truncate(size)
+        except OSError as exc:      # read-only: the scan at the next open finds it again
+            self.log.warning("outbox %s: not cut at byte %d (%s)", path, size, exc)
 
     @staticmethod
     def _resync(buf: bytes, start: int) -> int | None:
@@ -567,6 +585,7 @@ class Outbox:
                 if self._spares:
                     os.replace(self._spares[-1][0], path)   # written over from byte 0
                     self._spare_bytes -= self._spares.pop()[1]
+                    self.segments_reused += 1
                 seg = _Segment(path, self._next_rec, self._next_rec - 1, 0, 0, {})
                 self._segments.append(seg)
             # positioned writes rather than O_APPEND: a reused file's stale tail is overwritten
@@ -579,10 +598,23 @@ class Outbox:
 
     def _roll(self) -> None:
         if self._wfile is not None:
+            self._cut_stale_tail()
             self._unsynced_fds.append(os.dup(self._wfile.fileno()))   # fsynced by the next sync
             self._wfile.close()
         self._wfile = None
         self._wseg = None
+
+    def _cut_stale_tail(self) -> None:
+        """Cut a reused file after its last record when it is finished with (rolled, closed),
+        so that only the open segment can ever end in stale bytes (the scan at open treats
+        anything after the records of an earlier segment as damage)."""
+        fd = self._wfile.fileno()
+        try:
+            if os.fstat(fd).st_size > self._wseg.size:
+                os.ftruncate(fd, self._wseg.size)
+        except OSError as exc:
+            self.log.warning("outbox %s: stale bytes after the last record not cut (%s)",
+                             self._wseg.path, exc)
 
     def flush(self) -> None:
         """Kept for callers: appends reach the OS at once (a kill loses nothing appended)."""
@@ -861,7 +893,12 @@ class Outbox:
         return {"version": 1, "gen": self._state_gen, "acked": self._acked,
                 "next_rec": self._next_rec, "seq": dict(self._seq),
                 "reserved": dict(self._reserved), "dropped": self.dropped,
-                "corrupt": self.corrupt}
+                "corrupt": self.corrupt, "damaged": self._damaged_now()}
+
+    def _damaged_now(self) -> list[str]:
+        """The known damaged regions that are still in a segment file."""
+        names = {os.path.basename(seg.path) for seg in self._segments}
+        return sorted(k for k in self._known_damage if k.split(":")[0] in names)
 
     def _write_state(self) -> None:
         """Write the current state now (blocking)."""
@@ -922,6 +959,7 @@ class Outbox:
                 return
             self.sync()
             if self._wfile is not None:
+                self._cut_stale_tail()
                 self._wfile.close()
                 self._wfile = None
             self._close_reader()
@@ -974,6 +1012,7 @@ class Outbox:
         oldest = self.oldest_unacked_time_ns()
         return {"path": self.path, "depth": self.depth, "in_flight": self.in_flight,
                 "bytes": self.bytes, "spare_bytes": self._spare_bytes,
+                "segments_reused": self.segments_reused,
                 "max_bytes": self.max_bytes, "dropped": self.dropped,
                 "corrupt_skipped": self.corrupt, "state_write_error": self.write_error,
                 "oldest_unsent_age_s": None if oldest is None

@@ -6,7 +6,8 @@ ended (normally: SIGKILLed by the test) it prints `exit <pid> <status>`. The chi
 Store (10 ms flush interval) fed with deterministic blocks as fast as it can and prints
 `submitting <rows>` before each submit and `flushed <rows>` whenever the flushed row count reported
 by Store.status() changes. All lines go through os.write on fd 1, so lines of the parent and the
-child never interleave and the child's lines all precede its `exit` line.
+child never interleave; the child starts only once `pid` is written, and its lines all precede
+its `exit` line.
 
 The generator functions are also imported by the test to rebuild the expected data.
 """
@@ -102,8 +103,13 @@ def serve() -> None:
         if words[0] == "quit":
             break
         if words[0] == "run":
+            # the child waits until `pid` is out, so that its lines never come before it
+            go_r, go_w = os.pipe()
             pid = os.fork()
             if pid == 0:
+                os.close(go_w)
+                os.read(go_r, 1)
+                os.close(go_r)
                 code = 0
                 try:
                     run_writer(words[1])
@@ -112,7 +118,10 @@ def serve() -> None:
                     _say("error " + traceback.format_exc().replace("\n", " | "))
                     code = 1
                 os._exit(code)
+            os.close(go_r)
             _say(f"pid {pid}")
+            os.write(go_w, b"g")
+            os.close(go_w)
             _, status = os.waitpid(pid, 0)
             _say(f"exit {pid} {status}")
 

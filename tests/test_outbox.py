@@ -330,9 +330,10 @@ def test_emptied_segments_are_reused_and_their_stale_records_never_return(tmp_pa
     ob2.close()
 
 
-def _reused_segment_with_a_short_tail(path: str) -> tuple[list, str, int]:
-    """An outbox whose open segment is a reused file; returns (records written since the
-    reuse began, that segment's path, the end of its last record)."""
+def _reused_segment_with_a_short_tail(path: str, close: bool = False) -> tuple[list, str, int]:
+    """An outbox whose open segment is a reused file, left as a kill leaves it (or closed);
+    returns (records written since the reuse began, that segment's path, the end of its last
+    record)."""
     ob = Outbox(path, segment_bytes=1024, max_bytes=1 << 20)
     fill(ob, 60)
     drain(ob)
@@ -345,7 +346,10 @@ def _reused_segment_with_a_short_tail(path: str) -> tuple[list, str, int]:
         drain(ob)                       # the records before the reused segment are acked
     written += fill(ob, 2)
     seg, end = ob._wseg.path, ob._wseg.size
-    ob.close()
+    if close:
+        ob.close()
+    else:
+        ob.sync()                       # the state on disk; the files as they are
     return written, seg, end
 
 
@@ -375,12 +379,34 @@ def test_record_cut_short_over_stale_records_is_discarded(tmp_path):
     ob3.close()
 
 
-def test_stale_records_after_a_clean_close_are_not_damage(tmp_path):
+def test_stale_bytes_of_a_reused_file_are_not_damage(tmp_path, caplog):
     path = str(tmp_path / "ob")
     written, seg, end = _reused_segment_with_a_short_tail(path)
-    ob = Outbox(path)
+    assert os.path.getsize(seg) > end
+    ob = Outbox(path)                   # as after a kill: the stale bytes are still there
     assert ob.corrupt == 0
+    assert not [r for r in caplog.records if r.levelname == "WARNING"]
     assert [(g.rec, g.payload) for g in drain(ob, ack=False)] == [(w[0], w[3]) for w in written]
+    ob.close()
+
+
+def test_a_closed_or_rolled_reused_segment_is_cut_after_its_last_record(tmp_path):
+    path = str(tmp_path / "ob")
+    written, seg, end = _reused_segment_with_a_short_tail(path, close=True)
+    assert os.path.getsize(seg) == end
+    # every segment but the open one ends at its last record
+    ob = Outbox(path, segment_bytes=1024, max_bytes=1 << 20)
+    for _ in range(3):
+        fill(ob, 30)
+        drain(ob)
+        ob.sync()
+    spares = {os.stat(p).st_ino for p in _spares(path)}
+    assert spares
+    fill(ob, 60)                        # unacknowledged: rolled segments stay
+    rolled = _segments(path)[:-1]
+    assert len(rolled) >= 2 and any(os.stat(p).st_ino in spares for p in rolled)
+    for s in rolled:
+        assert os.path.getsize(s) == next(x.size for x in ob._segments if x.path == s)
     ob.close()
 
 
@@ -401,3 +427,73 @@ def test_spares_are_given_up_before_unsent_records(tmp_path):
     ob.sync()
     assert not _spares(path)
     ob.close()
+
+
+def test_sigkill_while_writing_over_reused_segments_loses_nothing_stored(tmp_path):
+    """Real kills of a writer that keeps acknowledging, so that new records keep going into
+    reused files over stale ones: after each, the log holds every record not acknowledged, in
+    order, each with its own bytes, and the next writer carries on from there."""
+    path = str(tmp_path / "ob")
+    child = textwrap.dedent(f"""
+        import sys
+        from straind.outbox import Outbox
+        ob = Outbox({path!r}, segment_bytes=2048, max_bytes=1 << 20, sync_interval_s=0.0)
+        i = ob.next_record
+        handed = []
+        while True:
+            # each record's payload names its record number, so a stale one would show
+            rec, _ = ob.append("k/" + str(i % 3), b"%08d:" % i + bytes([i % 251]) * (i % 90))
+            assert rec == i
+            i += 1
+            r = ob.next_unsent()
+            if r is not None:
+                handed.append(r.rec)
+            if len(handed) > 5:                 # acknowledge all but the newest few
+                for x in handed[:-5]:
+                    ob.ack(x)
+                handed = handed[-5:]
+                ob.maybe_sync()
+            if i % 200 == 0:
+                print(i, ob.segments_reused, flush=True)
+    """)
+    reused = 0
+    for round_ in range(6):
+        proc = subprocess.Popen([sys.executable, "-c", child], stdout=subprocess.PIPE, text=True)
+        try:
+            for _ in range(3 + round_):          # kill at different points
+                line = proc.stdout.readline()
+                assert line, "the writer died"
+            reported, reused_now = map(int, line.split())
+        finally:
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(10)
+        reused += reused_now
+        ob = Outbox(path)
+        # at most one record cut short per kill
+        assert ob.corrupt <= round_ + 1, (round_, ob.corrupt, os.listdir(path))
+        got = drain(ob, ack=False)
+        assert got, "unacknowledged records must survive"
+        recs = [g.rec for g in got]
+        assert recs == list(range(recs[0], recs[0] + len(recs))), recs
+        assert recs[-1] + 1 >= reported, (recs[-1], reported)   # none finished is missing
+        for g in got:
+            assert g.payload == b"%08d:" % g.rec + bytes([g.rec % 251]) * (g.rec % 90)
+            assert g.topic == "k/" + str(g.rec % 3)
+        ob.close()
+    assert reused, "the writer should have written over spare segments"
+
+
+def test_a_damaged_region_is_counted_once_however_often_the_log_is_opened(tmp_path):
+    path = str(tmp_path / "ob")
+    ob = Outbox(path, segment_bytes=1024)
+    fill(ob, 40)
+    ob.close()
+    first = _segments(path)[0]
+    data = bytearray(open(first, "rb").read())
+    length = RECORD_HEADER.unpack_from(data, 0)[1]
+    data[length + 45] ^= 0xFF              # the second record of an earlier segment
+    open(first, "wb").write(bytes(data))
+    for _ in range(3):                      # skipped (it cannot be cut), reported once
+        ob = Outbox(path, segment_bytes=1024)
+        assert ob.corrupt == 1
+        ob.close()
