@@ -244,11 +244,18 @@ def make_layout(channels: int, rate_hz: float):
     return DeviceLayout("dev0", "simulated-bridge", rate_hz, "int32", channels, chans)
 
 
+_RAW_CODES: dict[tuple, np.ndarray] = {}
+
+
 def make_block(layout, start_index: int, t0_ns: int, values: np.ndarray, quality: np.ndarray):
+    """A block as the chain hands it to the feed. The feed reads only the values, so every
+    block shares one array of raw codes (the producer's own cost stays out of the figures)."""
     from straind.block import Block, EngineeringBlock
-    raw = Block(layout.name, np.zeros(values.shape, np.int32), quality, start_index,
-                layout.period_ns, start_index // values.shape[0], time.monotonic_ns(),
-                time.time_ns(), t0_ns)
+    codes = _RAW_CODES.get(values.shape)
+    if codes is None:
+        codes = _RAW_CODES[values.shape] = np.zeros(values.shape, np.int32)
+    raw = Block(layout.name, codes, quality, start_index, layout.period_ns,
+                start_index // values.shape[0], time.monotonic_ns(), time.time_ns(), t0_ns)
     return EngineeringBlock(raw, values, quality, layout.names, layout.units)
 
 
