@@ -264,7 +264,9 @@ def test_storage_turning_read_only(tmp_path: Path) -> None:
         with ServiceProcess(cfg, tmp_path / "straind.sock", env=env) as svc:
             _wait(svc, lambda s: s["storage"]["flush_count"] > 2, "a first flush")
             floor = svc.command("status")["devices"]["dev0"]["samples"]
-            time.sleep(0.6)
+            # the fault comes once those samples are in the file (a loaded box flushes late)
+            _wait(svc, lambda s: s["storage"]["flushed_rows"].get("dev0", 0) >= floor,
+                  "the samples so far flushed")
             trigger.write_text("test: the medium failed\n")
             st = _wait(svc, lambda s: s["storage"]["faulted"], "storage_fault")
             assert "storage_fault" in [f["kind"] for f in st["faults"]]

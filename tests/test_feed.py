@@ -186,6 +186,17 @@ def test_summarise_splits_at_interval_boundaries():
     assert [float(p.last[0]) for p in parts] == [2.0, 7.0, 9.0]
 
 
+def test_any_bit_set_sees_one_bit_anywhere():
+    from straind.feed import _any_bit_set
+    q = np.zeros((1000, 32), np.uint8)
+    assert not _any_bit_set(q) and not _any_bit_set(q[::3, 1:5])
+    for r, c, bit in ((0, 0, 1), (999, 31, 128), (517, 9, 8)):
+        q[r, c] = bit
+        assert _any_bit_set(q) and _any_bit_set(q[r:r + 1, c:c + 1])
+        assert not _any_bit_set(np.delete(q, r, axis=0))     # and only because of that one
+        q[r, c] = 0
+
+
 @pytest.mark.parametrize("n", [1, 7, 39, 40, 41, 1000, 1013])
 def test_column_reductions_equal_numpy_along_the_columns(n):
     from straind.feed import _column_sum_min_max
