@@ -181,8 +181,12 @@ def test_drop_while_records_are_in_flight(tmp_path):
     ob.close()
 
 
+def _files(path: str, suffix: str) -> list[str]:
+    return sorted(os.path.join(path, n) for n in os.listdir(path) if n.endswith(suffix))
+
+
 def _segments(path: str) -> list[str]:
-    return sorted(os.path.join(path, n) for n in os.listdir(path) if n.endswith(".seg"))
+    return _files(path, ".seg")
 
 
 def test_truncated_tail_record_is_skipped_rest_kept(tmp_path):
@@ -304,7 +308,7 @@ def test_records_with_the_older_crc32_check_are_read_back(tmp_path, monkeypatch)
 
 
 def _spares(path: str) -> list[str]:
-    return sorted(os.path.join(path, n) for n in os.listdir(path) if n.endswith(".spare"))
+    return _files(path, ".spare")
 
 
 def test_emptied_segments_are_reused_and_their_stale_records_never_return(tmp_path):
