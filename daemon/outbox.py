@@ -5,9 +5,10 @@ acknowledged it, so broker outages, network loss and restarts of the service (SI
 lose nothing that reached the log. Design, chosen for speed:
 
 * Records go to segment files ``<first record number, 16 hex digits>.seg`` in one directory.
-  Each record is length-prefixed and CRC-checked (layout below); each append is one unbuffered
-  write to the OS, so a killed process loses nothing that was appended; `sync` fsyncs the open segment and the state file on a timer (batched, never
-  per message), which bounds what a power loss can take.
+  Each record is length-prefixed and CRC-checked (layout below); each append is one writev to
+  the OS (no user-space buffer), so a killed process loses nothing that was appended; `sync`
+  fsyncs the open segment and the state file on a timer (batched, never per message), which
+  bounds what a power loss can take.
 * ``state.json`` (written atomically: temp file, fsync, rename) holds the acknowledged position
   and the per-stream sequence counters. On open every segment is scanned: a torn tail (a write
   cut short by a kill) or a corrupted record fails its CRC and is skipped, the rest is kept, and
