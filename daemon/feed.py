@@ -440,14 +440,6 @@ def _body_bytes(n: int, k: int, quality: np.ndarray | None, dtype: str) -> int:
     return n * k * (8 if dtype == "float64" else 4) + (n * k if quality is not None else 0)
 
 
-def encode_batch_body(values: np.ndarray, quality: np.ndarray | None, dtype: str) -> bytes:
-    """The part of a batch after the header: values then (optionally) quality bytes."""
-    values = np.asarray(values)
-    out = np.empty(_body_bytes(*values.shape, quality, dtype), np.uint8)
-    _cast_body(out, values, quality, dtype)
-    return out.tobytes()
-
-
 def encode_batch(seq: int, first_time_ns: int, period_ns: int, start_index: int,
                  values: np.ndarray, quality: np.ndarray | None, dtype: str = "float32",
                  layout_crc: int = 0) -> bytes:

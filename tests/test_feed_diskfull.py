@@ -113,8 +113,8 @@ def test_append_on_a_full_disk_keeps_the_log_whole_and_works_again(tmp_path, mon
 class _ShortThenFull:
     """os.writev whose next call stores only part of the record, then says ENOSPC."""
 
-    def __init__(self, real, part: int):
-        self.real, self.part, self.calls = real, part, 0
+    def __init__(self, part: int):
+        self.part, self.calls = part, 0
 
     def __call__(self, fd: int, parts) -> int:
         self.calls += 1
@@ -128,7 +128,7 @@ def test_a_short_write_is_cut_back_or_skipped(tmp_path, monkeypatch, cut_fails):
     path = str(tmp_path / "outbox")
     ob = Outbox(path, max_bytes=64 << 20)
     first = [ob.append("t/b", f"m{i}".encode() * 20) for i in range(3)]
-    monkeypatch.setattr(os, "writev", _ShortThenFull(os.writev, 25))
+    monkeypatch.setattr(os, "writev", _ShortThenFull(25))
     if cut_fails:
         def no_truncate(fd, length):
             raise OSError(errno.EROFS, os.strerror(errno.EROFS))
