@@ -13,9 +13,9 @@ lossless subscriber) and a subscriber process, then runs, in one go:
   warm-up   a throwaway flat-out burst by a bare paho client (the first burst after start-up
             runs slow whoever sends it; not reported)
   max-feed  as fast as possible through `Feed` (backpressure on its queue; summary interval
-            of an hour, so only the batch path is measured), twice through one outbox
-            directory: max-feed-cold starts with none, max-feed finds the segment files the
-            first burst emptied and writes over them, as a service that has been running does
+            of an hour, so only the batch path is measured), all through one outbox
+            directory: max-feed-cold starts with none, the later bursts find the segment files
+            emptied before and write over them, as a service that has been running does
   max-paho  the same payloads as fast as possible by a bare paho client with the same
             in-flight window
             max-feed and max-paho run in turn --repeats times (max-feed-1, max-paho-1, ...);
@@ -417,7 +417,7 @@ def main(argv: list[str] | None = None) -> int:
                                           ctl))
         # a fresh outbox grows new files; a running one writes over the segment files it
         # emptied (daemon/outbox.py), which on some machines is several times cheaper: the
-        # cold burst is reported, the ratio is taken on the second burst through the same
+        # cold burst is reported, the ratio is taken on the later bursts through the same
         # outbox directory, as a service that has been running has it
         collect("max-feed-cold", run_feed_phase("max-feed-cold", port, layout, a.block,
                                                 a.max_blocks, values, quality, False, workdir,
